@@ -1,0 +1,315 @@
+"""The probe that training code uses to time its layers and exchanges.
+
+One probe per rank. Regions are timed with a pluggable clock and accumulated per layer; each exchange is
+also recorded with its peer (or collective kind and group), bytes, start, end and, when the caller knows
+when the peer was ready, the part of it spent waiting. At ``end_step`` the step is packed as columnar
+arrays and handed to ZeroMQ with NOBLOCK: if the socket's bounded queue is full (head node down or slow)
+the frame is dropped and counted, and the next frame carries the running count. Training never blocks on
+monitoring.
+"""
+
+from __future__ import annotations
+
+import secrets
+import time
+from types import TracebackType
+
+import numpy as np
+import zmq
+
+from agent import wire
+from agent.clock import Clock, default_clock
+
+SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
+CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
+
+
+class _Region:
+    """A reusable ``with`` timer for one layer; kept tiny because it runs inside the training loop."""
+
+    __slots__ = ("_clock", "_slot", "_start", "_totals")
+
+    def __init__(self, clock: Clock, totals: list[int], slot: int) -> None:
+        self._clock = clock
+        self._totals = totals
+        self._slot = slot
+        self._start = 0
+
+    def __enter__(self) -> _Region:
+        self._start = self._clock()
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        self._totals[self._slot] += self._clock() - self._start
+
+
+class Exchange:
+    """One exchange being timed. Use as a context manager or call ``stop()``.
+
+    If the caller learns when the peer was ready (for example a timestamp the sender put in the message,
+    on the same clock), ``peer_ready_at(t)`` splits the time into waiting and transfer. Exchanges of one
+    layer may overlap (a halo sent to two neighbours at once); the layer's exchange time counts the time
+    at least one of them was in flight, once. Every started exchange must be stopped exactly once.
+    """
+
+    __slots__ = ("_probe", "end", "group", "layer", "nbytes", "op", "peer", "start", "stopped", "wait_ns")
+
+    def __init__(self, probe: Probe, layer: int, op: wire.Op, peer: int, group: int, nbytes: int) -> None:
+        self._probe = probe
+        self.layer = layer
+        self.op = op
+        self.peer = peer
+        self.group = group
+        self.nbytes = nbytes
+        self.wait_ns = wire.UNKNOWN_WAIT
+        self.start = probe.clock()
+        self.end = -1
+        self.stopped = False
+        probe._begin_exchange(layer, self.start)
+
+    def peer_ready_at(self, ready_ns: int) -> None:
+        """Record that the peer was ready at ``ready_ns`` (probe clock): time before it was waiting."""
+        self.wait_ns = max(0, ready_ns - self.start)
+
+    def peer_ready_at_wall(self, ready_wall_ns: int) -> None:
+        """As ``peer_ready_at`` for a wall-clock (``time.time_ns``) stamp, e.g. one sent by the peer."""
+        probe = self._probe
+        self.peer_ready_at(probe._step_start + (ready_wall_ns - probe._step_wall))
+
+    def stop(self, nbytes: int | None = None) -> None:
+        if self.stopped:
+            raise RuntimeError("exchange stopped twice")
+        self.stopped = True
+        self.end = self._probe.clock()
+        if nbytes is not None:
+            self.nbytes = nbytes
+        if self.wait_ns != wire.UNKNOWN_WAIT:
+            self.wait_ns = min(self.wait_ns, self.end - self.start)
+        self._probe._finish_exchange(self)
+
+    def __enter__(self) -> Exchange:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        if not self.stopped:  # ``stop(nbytes=...)`` inside the block already recorded it
+            self.stop()
+
+
+class Probe:
+    """Times one rank's steps and publishes them to a collector or a node daemon.
+
+    ``endpoint`` is where to publish (``tcp://head:5555`` or the node daemon's ``ipc://`` endpoint);
+    ``None`` keeps frames in memory only (``sent_frames``), for tests and offline generation.
+    A probe belongs to one thread: time overlapping transfers from that thread (e.g. with a selector).
+    """
+
+    def __init__(
+        self,
+        rank: int,
+        world: int,
+        node: str,
+        endpoint: str | None,
+        *,
+        layers: list[str] | tuple[str, ...] = (),
+        job: str = "",
+        clock: Clock = default_clock,
+        wall_clock: Clock = time.time_ns,
+        queue_frames: int = 64,
+        context: zmq.Context | None = None,
+        curve_keys: tuple[bytes, bytes, bytes] | None = None,
+    ) -> None:
+        if not 0 <= rank < world:
+            raise ValueError(f"rank {rank} is outside a world of {world}")
+        self.rank, self.world, self.node, self.job = rank, world, node, job
+        self.clock = clock
+        self.wall_clock = wall_clock
+        self.sender = secrets.randbits(63)
+        self.seq = 0
+        self.dropped = 0
+        self.step_index = 0
+        self.offset_ns: int | None = None
+        self.sent_frames: list[list[bytes]] = []
+        self._layers: dict[str, int] = {}
+        self._schema_id = 0
+        self._schema_sent_at = -SCHEMA_EVERY
+        self._schema_dirty = True
+        self._compute: list[int] = []
+        self._exchange: list[int] = []
+        self._in_flight: list[int] = []  # per layer: exchanges started and not yet stopped
+        self._busy_since: list[int] = []  # per layer: when the current run of in-flight exchanges began
+        self._regions: dict[str, tuple[_Region, _Region]] = {}
+        self._records: list[tuple[int, int, int, int, int, int, int, int]] = []
+        self._open: dict[str, int] = {}
+        self._step_start = clock()
+        self._step_wall = wall_clock()
+        self._next_ping = 0.0
+        for name in layers:
+            self.layer(name)
+        self._socket: zmq.Socket | None = None
+        if endpoint is not None:
+            ctx = context or zmq.Context.instance()
+            sock = ctx.socket(zmq.DEALER)
+            sock.setsockopt(zmq.SNDHWM, queue_frames)
+            sock.setsockopt(zmq.LINGER, 1000)
+            if curve_keys is not None:
+                sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
+            sock.connect(endpoint)
+            self._socket = sock
+
+    # ------------------------------------------------------------------------------------ layers
+    def layer(self, name: str) -> int:
+        """The index of layer ``name``, registering it (and re-announcing the schema) if it is new."""
+        index = self._layers.get(name)
+        if index is None:
+            index = len(self._layers)
+            self._layers[name] = index
+            self._compute.append(0)
+            self._exchange.append(0)
+            self._in_flight.append(0)
+            self._busy_since.append(0)
+            self._regions[name] = (_Region(self.clock, self._compute, index),
+                                   _Region(self.clock, self._exchange, index))
+            self._schema_id += 1
+            self._schema_dirty = True
+        return index
+
+    @property
+    def layers(self) -> tuple[str, ...]:
+        return tuple(self._layers)
+
+    # ------------------------------------------------------------------------------------ timing
+    def compute(self, layer: str) -> _Region:
+        """``with probe.compute("attn.3"):`` times useful work of that layer."""
+        regions = self._regions.get(layer)
+        if regions is None:
+            self.layer(layer)
+            regions = self._regions[layer]
+        return regions[0]
+
+    def blocked(self, layer: str) -> _Region:
+        """Times exchange (blocked-in-communication) time of a layer without a per-transfer record."""
+        regions = self._regions.get(layer)
+        if regions is None:
+            self.layer(layer)
+            regions = self._regions[layer]
+        return regions[1]
+
+    def start_compute(self, layer: str) -> None:
+        """Explicit form of ``compute`` for code that cannot use ``with``."""
+        self.layer(layer)
+        self._open[layer] = self.clock()
+
+    def stop_compute(self, layer: str) -> None:
+        start = self._open.pop(layer, None)
+        if start is None:
+            raise RuntimeError(f"stop_compute({layer!r}) without start_compute")
+        self._compute[self._layers[layer]] += self.clock() - start
+
+    def exchange(self, layer: str, *, peer: int = wire.NO_PEER, nbytes: int = 0, op: wire.Op = wire.Op.RECV,
+                 group: int = 0) -> Exchange:
+        """Start timing one exchange of ``layer``: a point-to-point ``op`` (SEND/RECV) with ``peer``, or a
+        collective (``op`` such as ALLREDUCE, ``group`` = its group size, ``peer`` left at -1)."""
+        if op in wire.COLLECTIVE_OPS:
+            if peer != wire.NO_PEER:
+                raise ValueError("a collective has no single peer")
+        elif not 0 <= peer < self.world:
+            raise ValueError(f"peer {peer} is outside a world of {self.world}")
+        return Exchange(self, self.layer(layer), op, peer, group, nbytes)
+
+    def _begin_exchange(self, layer: int, start: int) -> None:
+        if self._in_flight[layer] == 0:
+            self._busy_since[layer] = start
+        self._in_flight[layer] += 1
+
+    def _finish_exchange(self, ex: Exchange) -> None:
+        # Overlapping exchanges are blocked time once, not once each: add the union of their intervals.
+        self._in_flight[ex.layer] -= 1
+        if self._in_flight[ex.layer] == 0:
+            self._exchange[ex.layer] += ex.end - self._busy_since[ex.layer]
+        self._records.append((ex.layer, int(ex.op), ex.peer, ex.group, ex.nbytes,
+                              ex.start - self._step_start, ex.end - self._step_start, ex.wait_ns))
+
+    # ------------------------------------------------------------------------------------ steps
+    def end_step(self) -> bool:
+        """Close the current step, publish it without blocking, and start the next one.
+
+        Returns True when the frame was queued, False when it was dropped (queue full)."""
+        now = self.clock()
+        layer_ns = np.array([self._compute, self._exchange], dtype=np.int64)
+        if self._records:
+            exchanges = np.array(self._records, dtype=np.int64).T
+        else:
+            exchanges = np.empty((len(wire.EXCHANGE_COLUMNS), 0), dtype=np.int64)
+        self._poll_clock()
+        if self._schema_dirty or self.seq - self._schema_sent_at >= SCHEMA_EVERY:
+            self._send_schema()
+        frames = wire.encode_step(
+            self.sender, self.seq, self._step_wall, step=self.step_index, duration_ns=now - self._step_start,
+            dropped_total=self.dropped, schema_id=self._schema_id, layer_ns=layer_ns, exchanges=exchanges,
+        )
+        ok = self._send(frames)
+        self.step_index += 1
+        for totals in (self._compute, self._exchange):
+            totals[:] = [0] * len(totals)
+        self._records.clear()
+        self._step_start = self.clock()
+        self._step_wall = self.wall_clock()
+        return ok
+
+    def _send_schema(self) -> None:
+        frames = wire.encode_schema(self.sender, self.seq, self.wall_clock(), schema_id=self._schema_id,
+                                    rank=self.rank, world=self.world, node=self.node, layers=self.layers,
+                                    job=self.job)
+        self._schema_sent_at = self.seq
+        if self._send(frames):
+            self._schema_dirty = False
+
+    def _send(self, frames: list[bytes]) -> bool:
+        """Hand frames to ZeroMQ without blocking; a full queue drops the frame and counts it."""
+        self.seq += 1
+        if self._socket is None:
+            self.sent_frames.append(frames)
+            return True
+        try:
+            self._socket.send_multipart([b"", *frames], flags=zmq.NOBLOCK, copy=False)
+        except zmq.Again:
+            self.dropped += 1
+            self._schema_dirty = True  # the collector may not know us yet when it comes back
+            return False
+        return True
+
+    # ------------------------------------------------------------------------------------ clock
+    def _poll_clock(self) -> None:
+        """Answer any pong from the collector and start a new ping now and then; never waits."""
+        if self._socket is None:
+            return
+        while True:
+            try:
+                reply = self._socket.recv_multipart(flags=zmq.NOBLOCK)
+            except zmq.Again:
+                break
+            t3 = self.wall_clock()
+            try:
+                message = wire.decode(reply[1:] if reply and not reply[0] else reply)
+            except wire.WireError:
+                continue
+            if isinstance(message, wire.ClockPong):
+                self.offset_ns, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
+                self._send(wire.encode_offset(self.sender, self.seq, t3, self.offset_ns, delay))
+        now = time.monotonic()
+        if now >= self._next_ping:
+            self._next_ping = now + CLOCK_EVERY_S
+            self._send(wire.encode_ping(self.sender, self.seq, self.wall_clock()))
+
+    def close(self) -> None:
+        if self._socket is not None:
+            self._socket.close()
+            self._socket = None
+
+    def __enter__(self) -> Probe:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()

@@ -1,0 +1,384 @@
+"""Watchtower's own wire format: ZeroMQ multipart frames, columnar, little-endian, versioned.
+
+Every message is a list of frames. Frame 0 is a fixed 40-byte header; frame 1 a small per-kind meta
+struct; the rest are raw little-endian arrays (or, for schemas and NIC names, UTF-8 JSON text).
+Nothing here uses pickle or eval. ``decode`` validates every field and raises ``WireError`` with a
+reason that the collector counts. The byte layout is documented in docs/wire.md.
+
+The node side owns this module; the head side imports it (``agent`` <- ``watchtower``).
+"""
+
+from __future__ import annotations
+
+import json
+import struct
+from dataclasses import dataclass
+from enum import IntEnum
+
+import numpy as np
+
+MAGIC = b"wtwr"
+VERSION = 1
+
+HEADER = struct.Struct("<4sHHQQqII")  # magic, version, kind, sender, seq, wall_ns, count_a, count_b
+assert HEADER.size == 40
+
+# Caps: a frame that declares more is rejected before anything is allocated.
+MAX_LAYERS = 4096
+MAX_EXCHANGES = 65536
+MAX_NICS = 64
+MAX_NAME_BYTES = 256
+MAX_SCHEMA_BYTES = MAX_LAYERS * (MAX_NAME_BYTES + 8) + 4096
+MAX_WORLD = 1 << 20
+
+
+class Kind(IntEnum):
+    """Message kinds on the wire."""
+
+    SCHEMA = 1
+    STEP = 2
+    NODE = 3
+    CLOCK_PING = 4
+    CLOCK_PONG = 5
+    CLOCK_OFFSET = 6
+
+
+class Op(IntEnum):
+    """What an exchange record was: point-to-point direction or the collective's kind."""
+
+    SEND = 0
+    RECV = 1
+    ALLREDUCE = 16
+    ALLGATHER = 17
+    REDUCE_SCATTER = 18
+    BROADCAST = 19
+    ALLTOALL = 20
+    BARRIER = 21
+    REDUCE = 22
+    GATHER = 23
+    SCATTER = 24
+
+
+COLLECTIVE_OPS = frozenset(op for op in Op if op >= Op.ALLREDUCE)
+NO_PEER = -1
+UNKNOWN_WAIT = -1
+
+# Exchange table rows (int64 [EXCHANGE_COLUMNS, E]).
+EXCHANGE_COLUMNS = ("layer", "op", "peer", "group", "nbytes", "start_ns", "end_ns", "wait_ns")
+X_LAYER, X_OP, X_PEER, X_GROUP, X_NBYTES, X_START, X_END, X_WAIT = range(len(EXCHANGE_COLUMNS))
+
+STEP_META = struct.Struct("<qqQII")  # step, duration_ns, dropped_total, schema_id, reserved
+NODE_META = struct.Struct("<ddd")  # cpu_percent, memory_percent, interval_s
+PING_META = struct.Struct("<q")  # t0
+PONG_META = struct.Struct("<qqq")  # t0, t1, t2
+OFFSET_META = struct.Struct("<qq")  # offset_ns, round_trip_ns
+NIC_COLUMNS = ("sent_Bps", "recv_Bps", "sent_total", "recv_total")
+
+_I64 = np.dtype("<i8")
+_F64 = np.dtype("<f8")
+
+
+class WireError(ValueError):
+    """A frame that is not a valid Watchtower message; ``reason`` is a short stable tag for counting."""
+
+    def __init__(self, reason: str, detail: str = "") -> None:
+        super().__init__(f"{reason}: {detail}" if detail else reason)
+        self.reason = reason
+
+
+@dataclass(frozen=True, slots=True)
+class Header:
+    kind: Kind
+    sender: int
+    seq: int
+    wall_ns: int
+    count_a: int = 0
+    count_b: int = 0
+
+
+@dataclass(frozen=True, slots=True)
+class Schema:
+    """Who a sender is. Ranks send one at start and again after any drop; node daemons use rank -1."""
+
+    header: Header
+    schema_id: int
+    rank: int
+    world: int
+    node: str
+    layers: tuple[str, ...]
+    job: str = ""
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    """One rank's step: per-layer compute/exchange nanoseconds and the table of exchanges."""
+
+    header: Header
+    step: int
+    duration_ns: int
+    dropped_total: int
+    schema_id: int
+    layer_ns: np.ndarray  # int64 [2, L]: compute_ns, exchange_ns
+    exchanges: np.ndarray  # int64 [8, E], rows per EXCHANGE_COLUMNS
+
+
+@dataclass(frozen=True, slots=True)
+class NodeSample:
+    header: Header
+    cpu_percent: float
+    memory_percent: float
+    interval_s: float
+    nics: tuple[str, ...]
+    nic_values: np.ndarray  # float64 [4, N], rows per NIC_COLUMNS
+
+
+@dataclass(frozen=True, slots=True)
+class ClockPing:
+    header: Header
+    t0: int
+
+
+@dataclass(frozen=True, slots=True)
+class ClockPong:
+    header: Header
+    t0: int
+    t1: int
+    t2: int
+
+
+@dataclass(frozen=True, slots=True)
+class ClockOffset:
+    """A sender's estimate of (collector clock - own clock), the usual NTP estimate."""
+
+    header: Header
+    offset_ns: int
+    round_trip_ns: int
+
+
+Message = Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset
+
+
+def _header(kind: Kind, sender: int, seq: int, wall_ns: int, count_a: int = 0, count_b: int = 0) -> bytes:
+    return HEADER.pack(MAGIC, VERSION, kind, sender, seq, wall_ns, count_a, count_b)
+
+
+def encode_schema(
+    sender: int, seq: int, wall_ns: int, *, schema_id: int, rank: int, world: int, node: str,
+    layers: list[str] | tuple[str, ...], job: str = "",
+) -> list[bytes]:
+    body = json.dumps(
+        {"schema_id": schema_id, "rank": rank, "world": world, "node": node, "layers": list(layers), "job": job},
+        ensure_ascii=False,
+        separators=(",", ":"),
+    ).encode()
+    return [_header(Kind.SCHEMA, sender, seq, wall_ns, len(layers), len(body)), body]
+
+
+def encode_step(
+    sender: int, seq: int, wall_ns: int, *, step: int, duration_ns: int, dropped_total: int, schema_id: int,
+    layer_ns: np.ndarray, exchanges: np.ndarray,
+) -> list[bytes]:
+    """``layer_ns`` is int64 [2, L]; ``exchanges`` is int64 [8, E]. Both are sent as raw bytes."""
+    n_layers = layer_ns.shape[1]
+    n_exchanges = exchanges.shape[1]
+    return [
+        _header(Kind.STEP, sender, seq, wall_ns, n_layers, n_exchanges),
+        STEP_META.pack(step, duration_ns, dropped_total, schema_id, 0),
+        np.ascontiguousarray(layer_ns, dtype=_I64).tobytes(),
+        np.ascontiguousarray(exchanges, dtype=_I64).tobytes(),
+    ]
+
+
+def encode_node(
+    sender: int, seq: int, wall_ns: int, *, cpu_percent: float, memory_percent: float, interval_s: float,
+    nics: list[str] | tuple[str, ...], nic_values: np.ndarray,
+) -> list[bytes]:
+    names = json.dumps(list(nics), ensure_ascii=False).encode()
+    return [
+        _header(Kind.NODE, sender, seq, wall_ns, len(nics), len(names)),
+        NODE_META.pack(cpu_percent, memory_percent, interval_s),
+        names,
+        np.ascontiguousarray(nic_values, dtype=_F64).tobytes(),
+    ]
+
+
+def encode_ping(sender: int, seq: int, t0: int) -> list[bytes]:
+    return [_header(Kind.CLOCK_PING, sender, seq, t0), PING_META.pack(t0)]
+
+
+def encode_pong(sender: int, seq: int, t0: int, t1: int, t2: int) -> list[bytes]:
+    return [_header(Kind.CLOCK_PONG, sender, seq, t2), PONG_META.pack(t0, t1, t2)]
+
+
+def encode_offset(sender: int, seq: int, wall_ns: int, offset_ns: int, round_trip_ns: int) -> list[bytes]:
+    return [_header(Kind.CLOCK_OFFSET, sender, seq, wall_ns), OFFSET_META.pack(offset_ns, round_trip_ns)]
+
+
+def clock_offset(t0: int, t1: int, t2: int, t3: int) -> tuple[int, int]:
+    """NTP's estimate from a two-way exchange: offset = ((t1-t0)+(t2-t3))/2, delay = (t3-t0)-(t2-t1)."""
+    return ((t1 - t0) + (t2 - t3)) // 2, (t3 - t0) - (t2 - t1)
+
+
+# ---------------------------------------------------------------------------------------------- decoding
+
+_PARTS = {
+    Kind.SCHEMA: 2,
+    Kind.STEP: 4,
+    Kind.NODE: 4,
+    Kind.CLOCK_PING: 2,
+    Kind.CLOCK_PONG: 2,
+    Kind.CLOCK_OFFSET: 2,
+}
+_META = {
+    Kind.STEP: STEP_META,
+    Kind.NODE: NODE_META,
+    Kind.CLOCK_PING: PING_META,
+    Kind.CLOCK_PONG: PONG_META,
+    Kind.CLOCK_OFFSET: OFFSET_META,
+}
+
+
+def decode_header(frame: bytes | memoryview) -> Header:
+    if len(frame) != HEADER.size:
+        raise WireError("bad-header-size", f"{len(frame)} bytes, expected {HEADER.size}")
+    magic, version, kind, sender, seq, wall_ns, count_a, count_b = HEADER.unpack(frame)
+    if magic != MAGIC:
+        raise WireError("bad-magic")
+    if version != VERSION:
+        raise WireError("bad-version", f"version {version}, this reader knows {VERSION}")
+    try:
+        kind = Kind(kind)
+    except ValueError:
+        raise WireError("bad-kind", str(kind)) from None
+    return Header(kind, sender, seq, wall_ns, count_a, count_b)
+
+
+def peek_kind(frame: bytes | memoryview) -> int | None:
+    """The kind number of a header frame without validating the rest (None if it is no header)."""
+    if len(frame) != HEADER.size or bytes(frame[:4]) != MAGIC:
+        return None
+    return int.from_bytes(frame[6:8], "little")
+
+
+def decode(frames: list[bytes] | list[memoryview]) -> Message:
+    """Decode and validate one multipart message. Raises ``WireError`` on anything malformed."""
+    if not frames:
+        raise WireError("empty")
+    header = decode_header(frames[0])
+    if len(frames) != _PARTS[header.kind]:
+        raise WireError("bad-part-count", f"{header.kind.name} has {len(frames)} parts")
+    meta_struct = _META.get(header.kind)
+    meta: tuple = ()
+    if meta_struct is not None:
+        if len(frames[1]) != meta_struct.size:
+            raise WireError("bad-meta-size", f"{header.kind.name}: {len(frames[1])} bytes")
+        meta = meta_struct.unpack(frames[1])
+    if header.kind is Kind.SCHEMA:
+        return _decode_schema(header, frames[1])
+    if header.kind is Kind.STEP:
+        return _decode_step(header, meta, frames[2], frames[3])
+    if header.kind is Kind.NODE:
+        return _decode_node(header, meta, frames[2], frames[3])
+    if header.kind is Kind.CLOCK_PING:
+        return ClockPing(header, *meta)
+    if header.kind is Kind.CLOCK_PONG:
+        return ClockPong(header, *meta)
+    return ClockOffset(header, *meta)
+
+
+def _json(blob: bytes | memoryview, declared: int, cap: int) -> object:
+    if declared != len(blob):
+        raise WireError("bad-length", f"declared {declared} bytes, got {len(blob)}")
+    if len(blob) > cap:
+        raise WireError("oversize", f"{len(blob)} bytes of text, cap {cap}")
+    try:
+        return json.loads(bytes(blob).decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError):
+        raise WireError("bad-text", "not UTF-8 JSON") from None
+
+
+def _name(value: object, what: str) -> str:
+    if not isinstance(value, str):
+        raise WireError("bad-name", f"{what} is not a string")
+    if len(value.encode()) > MAX_NAME_BYTES:
+        raise WireError("bad-name", f"{what} longer than {MAX_NAME_BYTES} bytes")
+    return value
+
+
+def _decode_schema(header: Header, blob: bytes | memoryview) -> Schema:
+    if header.count_a > MAX_LAYERS:
+        raise WireError("oversize", f"{header.count_a} layers, cap {MAX_LAYERS}")
+    body = _json(blob, header.count_b, MAX_SCHEMA_BYTES)
+    if not isinstance(body, dict):
+        raise WireError("bad-schema", "not an object")
+    schema_id, rank, world = body.get("schema_id"), body.get("rank"), body.get("world")
+    layers = body.get("layers")
+    for what, value in (("schema_id", schema_id), ("rank", rank), ("world", world)):
+        if type(value) is not int:
+            raise WireError("bad-schema", f"{what} is not an integer")
+    if not 0 <= schema_id < 1 << 32:
+        raise WireError("bad-schema", "schema_id out of range")
+    if not 0 < world <= MAX_WORLD or not -1 <= rank < world:
+        raise WireError("bad-schema", f"rank {rank} of world {world}")
+    if not isinstance(layers, list) or len(layers) != header.count_a:
+        raise WireError("bad-schema", "layer list does not match the header")
+    names = tuple(_name(layer, "layer name") for layer in layers)
+    if len(set(names)) != len(names):
+        raise WireError("bad-schema", "duplicate layer names")
+    return Schema(header, schema_id, rank, world, _name(body.get("node"), "node"), names,
+                  _name(body.get("job", ""), "job"))
+
+
+def _array(buffer: bytes | memoryview, dtype: np.dtype, rows: int, cols: int) -> np.ndarray:
+    expected = rows * cols * dtype.itemsize
+    if len(buffer) != expected:
+        raise WireError("bad-length", f"array of {len(buffer)} bytes, expected {expected}")
+    return np.frombuffer(buffer, dtype=dtype).reshape(rows, cols)
+
+
+def _decode_step(header: Header, meta: tuple, layers: bytes, table: bytes) -> Step:
+    step, duration_ns, dropped_total, schema_id, _ = meta
+    if header.count_a > MAX_LAYERS:
+        raise WireError("oversize", f"{header.count_a} layers, cap {MAX_LAYERS}")
+    if header.count_b > MAX_EXCHANGES:
+        raise WireError("oversize", f"{header.count_b} exchanges, cap {MAX_EXCHANGES}")
+    if step < 0:
+        raise WireError("bad-step", "negative step index")
+    if duration_ns < 0:
+        raise WireError("bad-timing", "negative step duration")
+    layer_ns = _array(layers, _I64, 2, header.count_a)
+    exchanges = _array(table, _I64, len(EXCHANGE_COLUMNS), header.count_b)
+    if layer_ns.size and layer_ns.min() < 0:
+        raise WireError("bad-timing", "negative layer time")
+    if exchanges.size:
+        if exchanges[X_LAYER].min() < 0 or exchanges[X_LAYER].max() >= header.count_a:
+            raise WireError("bad-exchange", "layer index out of range")
+        if exchanges[X_NBYTES].min() < 0:
+            raise WireError("bad-exchange", "negative byte count")
+        if (exchanges[X_END] < exchanges[X_START]).any():
+            raise WireError("bad-timing", "exchange ends before it starts")
+        wait = exchanges[X_WAIT]
+        if ((wait < UNKNOWN_WAIT) | (wait > exchanges[X_END] - exchanges[X_START])).any():
+            raise WireError("bad-timing", "wait outside its exchange")
+        if not np.isin(exchanges[X_OP], _OP_VALUES).all():
+            raise WireError("bad-exchange", "unknown operation")
+    return Step(header, step, duration_ns, dropped_total, schema_id, layer_ns, exchanges)
+
+
+_OP_VALUES = np.array(sorted(int(op) for op in Op), dtype=np.int64)
+
+
+def _decode_node(header: Header, meta: tuple, names_blob: bytes, values: bytes) -> NodeSample:
+    cpu, memory, interval = meta
+    if header.count_a > MAX_NICS:
+        raise WireError("oversize", f"{header.count_a} NICs, cap {MAX_NICS}")
+    if not all(np.isfinite((cpu, memory, interval))) or interval <= 0:
+        raise WireError("bad-sample", "non-finite or non-positive figure")
+    names = _json(names_blob, header.count_b, MAX_NICS * (MAX_NAME_BYTES + 4) + 2)
+    if not isinstance(names, list) or len(names) != header.count_a:
+        raise WireError("bad-sample", "NIC names do not match the header")
+    nics = tuple(_name(name, "NIC name") for name in names)
+    nic_values = _array(values, _F64, len(NIC_COLUMNS), header.count_a)
+    if nic_values.size and not (np.isfinite(nic_values).all() and (nic_values >= 0).all()):
+        raise WireError("bad-sample", "NIC figure not finite and non-negative")
+    return NodeSample(header, cpu, memory, interval, nics, nic_values)

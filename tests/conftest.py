@@ -1,0 +1,28 @@
+"""Fixtures shared by every test folder: loopback endpoints and a ZeroMQ context that is cleaned up."""
+
+from __future__ import annotations
+
+import socket
+from collections.abc import Iterator
+
+import pytest
+import zmq
+
+
+def free_tcp_port() -> int:
+    """A port nobody listens on right now (bound and released by the kernel)."""
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
+
+
+@pytest.fixture
+def endpoint() -> str:
+    return f"tcp://127.0.0.1:{free_tcp_port()}"
+
+
+@pytest.fixture
+def zmq_context() -> Iterator[zmq.Context]:
+    ctx = zmq.Context()
+    yield ctx
+    ctx.destroy(linger=0)

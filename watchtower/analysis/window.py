@@ -1,0 +1,101 @@
+"""The input of every analysis: a window of steps as dense numpy arrays.
+
+The store (live) and the recording reader (report, replay) both build a ``Window``; the analysis never
+sees frames, sockets or widgets. Times are seconds (float64). A rank that did not report a step has NaN
+in that step's cells.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Transfers:
+    """Point-to-point transfers, one entry per received message (columnar, all arrays of length E).
+
+    ``src``/``dst`` are rank ids. ``start_s``/``end_s`` are on the collector's clock (offsets applied).
+    ``wait_s`` is the part of the exchange spent waiting for the peer (NaN when unknown), so the transfer
+    proper took ``end_s - start_s - wait_s``.
+    """
+
+    step: np.ndarray  # int64
+    layer: np.ndarray  # int32, index into Window.layers
+    src: np.ndarray  # int32 rank
+    dst: np.ndarray  # int32 rank
+    nbytes: np.ndarray  # int64
+    start_s: np.ndarray  # float64
+    end_s: np.ndarray  # float64
+    wait_s: np.ndarray  # float64, NaN = unknown
+
+    @classmethod
+    def empty(cls) -> Transfers:
+        i64, i32, f64 = np.int64, np.int32, np.float64
+        return cls(np.empty(0, i64), np.empty(0, i32), np.empty(0, i32), np.empty(0, i32), np.empty(0, i64),
+                   np.empty(0, f64), np.empty(0, f64), np.empty(0, f64))
+
+    def __len__(self) -> int:
+        return len(self.step)
+
+    @property
+    def transfer_s(self) -> np.ndarray:
+        """Time moving bytes: the exchange less the known wait (all of it when the wait is unknown)."""
+        return self.end_s - self.start_s - np.nan_to_num(self.wait_s, nan=0.0)
+
+
+@dataclass(frozen=True)
+class Collectives:
+    """Collective operations (allreduce and friends), one entry per call per rank (columnar, length K)."""
+
+    step: np.ndarray  # int64
+    layer: np.ndarray  # int32
+    rank: np.ndarray  # int32
+    op: np.ndarray  # int16, agent.wire.Op value
+    group: np.ndarray  # int32, group size
+    nbytes: np.ndarray  # int64
+    seconds: np.ndarray  # float64, time blocked in the call
+
+    @classmethod
+    def empty(cls) -> Collectives:
+        return cls(np.empty(0, np.int64), np.empty(0, np.int32), np.empty(0, np.int32), np.empty(0, np.int16),
+                   np.empty(0, np.int32), np.empty(0, np.int64), np.empty(0, np.float64))
+
+    def __len__(self) -> int:
+        return len(self.step)
+
+
+@dataclass(frozen=True)
+class Window:
+    """A window of S steps from R ranks over L layers, on N nodes."""
+
+    layers: tuple[str, ...]  # L layer names
+    nodes: tuple[str, ...]  # N node names
+    ranks: np.ndarray  # int32 [R] rank ids, ascending
+    rank_node: np.ndarray  # int32 [R] index into nodes
+    steps: np.ndarray  # int64 [S] step indices, ascending
+    compute_s: np.ndarray  # float64 [S, R, L]
+    exchange_s: np.ndarray  # float64 [S, R, L]
+    step_s: np.ndarray  # float64 [S, R] wall time of each rank's step
+    transfers: Transfers = field(default_factory=Transfers.empty)
+    collectives: Collectives = field(default_factory=Collectives.empty)
+
+    @property
+    def shape(self) -> tuple[int, int, int]:
+        return self.compute_s.shape  # type: ignore[return-value]
+
+
+@dataclass(frozen=True)
+class RunSeries:
+    """Whole-run per-step series for trends and degradation alerts (the store may downsample them).
+
+    ``links`` lists the directed node pairs (src node index, dst node index) of the columns;
+    ``link_transfer_s`` is the summed transfer time (waits excluded) of that pair in that step.
+    """
+
+    steps: np.ndarray  # int64 [S]
+    step_s: np.ndarray  # float64 [S], the step's wall time (slowest rank)
+    links: tuple[tuple[int, int], ...]  # P pairs of node indices
+    link_bytes: np.ndarray  # float64 [S, P]
+    link_transfer_s: np.ndarray  # float64 [S, P]

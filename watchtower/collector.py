@@ -1,0 +1,159 @@
+"""The live collector: binds one ZeroMQ ROUTER socket, answers clock pings, records and ingests frames.
+
+Agents connect out with DEALER sockets and send ``[b"", header, ...]``; a relay in between adds its own
+routing frames in front, so everything up to the first empty frame is the return address. Frames are
+appended to the recording before they are interpreted, so a frame that our decoder later rejects is still
+kept (and counted the same way on replay).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import ipaddress
+import re
+import secrets
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import zmq
+
+from agent import wire
+from watchtower.ingest import Ingest
+from watchtower.recording import Recorder
+
+MAX_MESSAGE_BYTES = 64 << 20  # ZeroMQ drops peers that send more in one message (wire caps are far lower)
+DRAIN_BATCH = 4096
+
+_TCP = re.compile(r"^tcp://(?P<host>\[[0-9a-fA-F:.]+\]|[^:/\s]+):(?P<port>\d{1,5})$")
+_IPC = re.compile(r"^ipc://(?P<path>\S+)$")
+
+
+class EndpointError(ValueError):
+    """An endpoint string we cannot use; the message is one line for the user."""
+
+
+@dataclass(frozen=True)
+class Endpoint:
+    url: str
+    loopback: bool
+
+
+def parse_endpoint(url: str, *, binding: bool) -> Endpoint:
+    """Check ``tcp://HOST:PORT`` or ``ipc://PATH`` before ZeroMQ sees it, and tell if it stays on this host."""
+    if match := _IPC.match(url):
+        return Endpoint(url, loopback=True)
+    match = _TCP.match(url)
+    if not match:
+        raise EndpointError(f"bad endpoint {url!r}: expected tcp://HOST:PORT or ipc://PATH")
+    port = int(match["port"])
+    if not 0 < port < 65536:
+        raise EndpointError(f"bad endpoint {url!r}: port {port} out of range")
+    host = match["host"].strip("[]")
+    if host == "*":
+        if not binding:
+            raise EndpointError(f"bad endpoint {url!r}: '*' is only for listening")
+        return Endpoint(url, loopback=False)
+    if host == "localhost":
+        return Endpoint(url, loopback=True)
+    try:
+        return Endpoint(url, loopback=ipaddress.ip_address(host).is_loopback)
+    except ValueError:
+        if binding:
+            raise EndpointError(f"bad endpoint {url!r}: listen on an IP address, '*' or localhost") from None
+        return Endpoint(url, loopback=False)
+
+
+def split_envelope(frames: list[bytes]) -> tuple[list[bytes], list[bytes]]:
+    """Split a ROUTER message into (return address, payload) at the first empty frame."""
+    for i, frame in enumerate(frames):
+        if not frame:
+            return frames[: i + 1], frames[i + 1:]
+    return frames[:1], frames[1:]
+
+
+class Collector:
+    """Receives agent frames on ``listen``; see the module docstring for the protocol."""
+
+    def __init__(
+        self,
+        listen: str,
+        ingest: Ingest,
+        recorder: Recorder | None = None,
+        *,
+        context: zmq.Context | None = None,
+        on_message: Callable[[int, list[bytes], wire.Message | None], None] | None = None,
+        server_secret: bytes | None = None,
+    ) -> None:
+        self.endpoint = parse_endpoint(listen, binding=True)
+        self.ingest = ingest
+        self.recorder = recorder
+        self.on_message = on_message
+        self.sender = secrets.randbits(63)
+        self._seq = 0
+        self._ctx = context or zmq.Context.instance()
+        self.socket = self._ctx.socket(zmq.ROUTER)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        self.socket.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
+        self.socket.setsockopt(zmq.RCVHWM, 100_000)
+        if server_secret is not None:
+            self.socket.curve_server = True
+            self.socket.curve_secretkey = server_secret
+        try:
+            self.socket.bind(listen)
+        except zmq.ZMQError as exc:
+            self.socket.close()
+            raise EndpointError(f"cannot listen on {listen}: {exc.strerror}") from None
+        self.bound = self.socket.getsockopt_string(zmq.LAST_ENDPOINT)
+
+    def drain(self, timeout_ms: int) -> int:
+        """Wait up to ``timeout_ms`` for traffic, then take everything waiting (bounded batch)."""
+        if not self.socket.poll(timeout_ms, zmq.POLLIN):
+            return 0
+        batch: list[tuple[int, list[bytes]]] = []
+        while len(batch) < DRAIN_BATCH:
+            try:
+                raw = self.socket.recv_multipart(flags=zmq.NOBLOCK)
+            except zmq.Again:
+                break
+            received_ns = time.time_ns()
+            envelope, frames = split_envelope(raw)
+            batch.append((received_ns, frames))
+            if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
+                self._answer_ping(envelope, frames, received_ns)
+        if self.recorder is not None:
+            self.recorder.write_many(batch)
+        for received_ns, frames in batch:
+            message = self.ingest.feed(received_ns, frames)
+            if self.on_message is not None:
+                self.on_message(received_ns, frames, message)
+        return len(batch)
+
+    def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:
+        try:
+            ping = wire.decode(frames)
+        except wire.WireError:
+            return  # counted when the batch is ingested
+        if not isinstance(ping, wire.ClockPing):
+            return
+        pong = wire.encode_pong(self.sender, self._seq, ping.t0, t1, time.time_ns())
+        self._seq += 1
+        with contextlib.suppress(zmq.Again):  # the agent pings again later; never block on an agent
+            self.socket.send_multipart([*envelope, *pong], flags=zmq.NOBLOCK)
+
+    def run(self, stop: threading.Event, duration_s: float | None = None) -> None:
+        deadline = None if duration_s is None else time.monotonic() + duration_s
+        while not stop.is_set():
+            timeout = 100
+            if deadline is not None:
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    break
+                timeout = max(1, min(timeout, int(left * 1000)))
+            self.drain(timeout)
+
+    def close(self) -> None:
+        self.socket.close()
+        if self.recorder is not None:
+            self.recorder.close()

@@ -1,0 +1,356 @@
+"""The collector's state: who is talking, the recent steps in full, and whole-run series, all bounded.
+
+The store is the only writer of job state. It keeps the last steps in full detail (a window bounded by
+``max_cells``), whole-run per-layer totals and per-step series, the latest node samples and clock offsets.
+``window()`` and ``series()`` hand the analysis plain numpy snapshots; nothing outside reads the internals.
+"""
+
+from __future__ import annotations
+
+from collections import OrderedDict
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from agent import wire
+from watchtower.analysis.window import Collectives, RunSeries, Transfers, Window
+
+NS = 1e-9
+DEFAULT_MAX_CELLS = 1 << 24  # rank x layer x step cells kept in full detail (two float64 arrays)
+SERIES_CAP = 1 << 16  # per-step series entries before pairs of old entries are merged
+
+
+@dataclass
+class RankInfo:
+    rank: int
+    world: int
+    node: int  # index into Store.nodes
+    layer_map: np.ndarray  # int64: the sender's layer index -> global layer index
+    schema_id: int
+    sender: int
+    offset_ns: int = 0  # collector clock minus sender clock
+    round_trip_ns: int | None = None
+    last_wall_ns: int = 0
+    last_step: int = -1
+
+
+@dataclass
+class NodeInfo:
+    name: str
+    cpu_percent: float = float("nan")
+    memory_percent: float = float("nan")
+    nics: tuple[str, ...] = ()
+    nic_values: np.ndarray = field(default_factory=lambda: np.zeros((len(wire.NIC_COLUMNS), 0)))
+    last_heard_ns: int = 0
+    offset_ns: int | None = None
+
+
+@dataclass
+class _StepSlab:
+    """One step across ranks: dense [R, L] arrays that grow as ranks and layers appear."""
+
+    compute: np.ndarray
+    exchange: np.ndarray
+    duration: np.ndarray
+    reported: int = 0
+    transfers: list[np.ndarray] = field(default_factory=list)  # float64 [8, E] per rank, see _TRANSFER_ROWS
+    collectives: list[np.ndarray] = field(default_factory=list)
+
+
+class Store:
+    """Aggregates decoded messages into analysable state."""
+
+    def __init__(self, max_cells: int = DEFAULT_MAX_CELLS) -> None:
+        self.max_cells = max_cells
+        self.layers: list[str] = []
+        self._layer_index: dict[str, int] = {}
+        self.nodes: list[NodeInfo] = []
+        self._node_index: dict[str, int] = {}
+        self.ranks: dict[int, RankInfo] = {}
+        self._sender_rank: dict[int, int] = {}
+        self._sender_node: dict[int, int] = {}
+        self._pending_offset: dict[int, tuple[int, int]] = {}
+        self.world = 0
+        self.job = ""
+        self._slabs: OrderedDict[int, _StepSlab] = OrderedDict()
+        self._row: dict[int, int] = {}  # rank -> row in the dense arrays
+        self.total_compute_ns = np.zeros((0, 0), dtype=np.int64)  # exact sums, whole run
+        self.total_exchange_ns = np.zeros((0, 0), dtype=np.int64)
+        self.epoch_ns: int | None = None  # wall-clock origin of transfer times, keeps float64 precise
+        self.steps_seen = 0
+        self.last_step = -1
+        self.unknown_sender_steps = 0
+        # whole-run series, keyed by step
+        self._series_step: dict[int, float] = {}
+        self._series_links: dict[int, dict[tuple[int, int], list[float]]] = {}
+        self._pairs: dict[tuple[int, int], int] = {}
+
+    # ------------------------------------------------------------------------------ registration
+    def _node(self, name: str) -> int:
+        index = self._node_index.get(name)
+        if index is None:
+            index = self._node_index[name] = len(self.nodes)
+            self.nodes.append(NodeInfo(name))
+        return index
+
+    def _layer(self, name: str) -> int:
+        index = self._layer_index.get(name)
+        if index is None:
+            index = self._layer_index[name] = len(self.layers)
+            self.layers.append(name)
+        return index
+
+    def add_schema(self, message: wire.Schema) -> None:
+        node = self._node(message.node)
+        self._sender_node[message.header.sender] = node
+        self.job = message.job or self.job
+        if message.rank < 0:  # a node daemon: it speaks for the node, not for a rank
+            return
+        layer_map = np.array([self._layer(name) for name in message.layers], dtype=np.int64)
+        info = self.ranks.get(message.rank)
+        if info is None:
+            self._row[message.rank] = len(self._row)
+            info = self.ranks[message.rank] = RankInfo(message.rank, message.world, node, layer_map,
+                                                       message.schema_id, message.header.sender)
+        else:
+            info.node, info.layer_map = node, layer_map
+            info.schema_id, info.sender = message.schema_id, message.header.sender
+        self._sender_rank[message.header.sender] = message.rank
+        self.world = max(self.world, message.world)
+        if message.header.sender in self._pending_offset:
+            info.offset_ns, info.round_trip_ns = self._pending_offset.pop(message.header.sender)
+        self._grow_totals()
+
+    def _grow_totals(self) -> None:
+        shape = (len(self._row), len(self.layers))
+        if self.total_compute_ns.shape != shape:
+            self.total_compute_ns = _grown(self.total_compute_ns, shape, 0)
+            self.total_exchange_ns = _grown(self.total_exchange_ns, shape, 0)
+
+    # ------------------------------------------------------------------------------ messages
+    def add_offset(self, message: wire.ClockOffset) -> None:
+        sender = message.header.sender
+        rank = self._sender_rank.get(sender)
+        if rank is not None:
+            info = self.ranks[rank]
+            info.offset_ns, info.round_trip_ns = message.offset_ns, message.round_trip_ns
+        else:
+            self._pending_offset[sender] = (message.offset_ns, message.round_trip_ns)
+        node = self._sender_node.get(sender)
+        if node is not None:
+            self.nodes[node].offset_ns = message.offset_ns
+
+    def add_node_sample(self, message: wire.NodeSample, received_ns: int) -> bool:
+        node = self._sender_node.get(message.header.sender)
+        if node is None:
+            return False
+        info = self.nodes[node]
+        info.cpu_percent, info.memory_percent = message.cpu_percent, message.memory_percent
+        info.nics, info.nic_values = message.nics, np.array(message.nic_values)
+        info.last_heard_ns = received_ns
+        return True
+
+    def add_step(self, message: wire.Step, received_ns: int) -> bool:
+        """Fold one rank's step in. False when its sender's schema is unknown or does not match."""
+        rank = self._sender_rank.get(message.header.sender)
+        if rank is None:
+            self.unknown_sender_steps += 1
+            return False
+        info = self.ranks[rank]
+        if message.schema_id != info.schema_id or message.layer_ns.shape[1] != len(info.layer_map):
+            self.unknown_sender_steps += 1
+            return False
+        info.last_wall_ns = message.header.wall_ns
+        info.last_step = max(info.last_step, message.step)
+        self.nodes[info.node].last_heard_ns = received_ns
+        row = self._row[rank]
+        slab = self._slab(message.step)
+        columns = info.layer_map
+        compute = message.layer_ns[0] * NS
+        exchange = message.layer_ns[1] * NS
+        slab.compute[row, columns] = compute
+        slab.exchange[row, columns] = exchange
+        slab.duration[row] = message.duration_ns * NS
+        slab.reported += 1
+        self.total_compute_ns[row, columns] += message.layer_ns[0]
+        self.total_exchange_ns[row, columns] += message.layer_ns[1]
+        self._add_exchanges(slab, info, message)
+        self.last_step = max(self.last_step, message.step)
+        step_s = self._series_step.get(message.step, 0.0)
+        self._series_step[message.step] = max(step_s, message.duration_ns * NS)
+        return True
+
+    def _add_exchanges(self, slab: _StepSlab, info: RankInfo, message: wire.Step) -> None:
+        table = message.exchanges
+        if not table.shape[1]:
+            return
+        ops = table[wire.X_OP]
+        if self.epoch_ns is None:
+            self.epoch_ns = message.header.wall_ns
+        base_ns = message.header.wall_ns + self.offset_ns(info) - self.epoch_ns
+        recv = table[:, ops == wire.Op.RECV]
+        if recv.shape[1]:
+            peers = recv[wire.X_PEER]
+            wait = recv[wire.X_WAIT].astype(np.float64) * NS
+            wait[recv[wire.X_WAIT] == wire.UNKNOWN_WAIT] = np.nan
+            rows = np.vstack([
+                np.full(peers.shape, message.step, dtype=np.float64),
+                info.layer_map[recv[wire.X_LAYER]].astype(np.float64),
+                peers.astype(np.float64),
+                np.full(peers.shape, info.rank, dtype=np.float64),
+                recv[wire.X_NBYTES].astype(np.float64),
+                (base_ns + recv[wire.X_START]) * NS,
+                (base_ns + recv[wire.X_END]) * NS,
+                wait,
+            ])
+            slab.transfers.append(rows)
+            self._add_link_series(message.step, info, peers, rows)
+        coll = table[:, np.isin(ops, _COLLECTIVE_VALUES)]
+        if coll.shape[1]:
+            slab.collectives.append(np.vstack([
+                np.full(coll.shape[1], message.step, dtype=np.float64),
+                info.layer_map[coll[wire.X_LAYER]].astype(np.float64),
+                np.full(coll.shape[1], info.rank, dtype=np.float64),
+                coll[wire.X_OP].astype(np.float64),
+                coll[wire.X_GROUP].astype(np.float64),
+                coll[wire.X_NBYTES].astype(np.float64),
+                (coll[wire.X_END] - coll[wire.X_START]) * NS,
+            ]))
+
+    def offset_ns(self, info: RankInfo) -> int:
+        """Collector clock minus the rank's clock: its own handshake if it made one, else its node daemon's."""
+        if info.round_trip_ns is not None:
+            return info.offset_ns
+        return self.nodes[info.node].offset_ns or 0
+
+    def _add_link_series(self, step: int, info: RankInfo, peers: np.ndarray, rows: np.ndarray) -> None:
+        per_pair = self._series_links.setdefault(step, {})
+        transfer = rows[6] - rows[5] - np.nan_to_num(rows[7])
+        for peer, nbytes, seconds in zip(peers.tolist(), rows[4].tolist(), transfer.tolist(), strict=True):
+            peer_info = self.ranks.get(peer)
+            if peer_info is None or peer_info.node == info.node:
+                continue
+            pair = (peer_info.node, info.node)
+            self._pairs.setdefault(pair, len(self._pairs))
+            cell = per_pair.setdefault(pair, [0.0, 0.0])
+            cell[0] += nbytes
+            cell[1] += seconds
+        if len(self._series_step) > SERIES_CAP:
+            self._merge_old_series()
+
+    def _merge_old_series(self) -> None:
+        """Keep memory flat on long runs: fold the oldest half of the series two steps into one."""
+        steps = sorted(self._series_step)
+        old = steps[: len(steps) // 2]
+        for first, second in zip(old[0::2], old[1::2], strict=False):
+            self._series_step[first] = max(self._series_step[first], self._series_step.pop(second))
+            links = self._series_links.pop(second, {})
+            merged = self._series_links.setdefault(first, {})
+            for pair, (nbytes, seconds) in links.items():
+                cell = merged.setdefault(pair, [0.0, 0.0])
+                cell[0] += nbytes
+                cell[1] += seconds
+
+    def _slab(self, step: int) -> _StepSlab:
+        slab = self._slabs.get(step)
+        shape = (len(self._row), len(self.layers))
+        if slab is None:
+            slab = _StepSlab(np.full(shape, np.nan), np.full(shape, np.nan), np.full(shape[0], np.nan))
+            self._slabs[step] = slab
+            if len(self._slabs) > 1 and step < next(reversed(self._slabs)):
+                self._slabs = OrderedDict(sorted(self._slabs.items()))
+            self.steps_seen += 1
+            self._trim()
+        elif slab.compute.shape != shape:
+            slab.compute = _grown(slab.compute, shape, np.nan)
+            slab.exchange = _grown(slab.exchange, shape, np.nan)
+            slab.duration = _grown(slab.duration[:, None], (shape[0], 1), np.nan)[:, 0]
+        return slab
+
+    def _trim(self) -> None:
+        cells = max(1, len(self._row) * max(1, len(self.layers)))
+        keep = max(2, self.max_cells // cells)
+        while len(self._slabs) > keep:
+            self._slabs.popitem(last=False)
+
+    # ------------------------------------------------------------------------------ snapshots
+    def window(self, last: int | None = None) -> Window:
+        """The recent steps as a Window: every step up to the newest one all known ranks reported."""
+        n_ranks, n_layers = len(self._row), len(self.layers)
+        complete = [s for s, slab in self._slabs.items() if slab.reported >= n_ranks]
+        newest = complete[-1] if complete else (next(reversed(self._slabs)) if self._slabs else -1)
+        steps = [s for s in self._slabs if s <= newest]
+        if last is not None:
+            steps = steps[-last:]
+        rank_ids = sorted(self._row)
+        rows = np.array([self._row[r] for r in rank_ids], dtype=np.int64)
+        shape = (len(steps), n_ranks, n_layers)
+        compute, exchange = np.full(shape, np.nan), np.full(shape, np.nan)
+        duration = np.full(shape[:2], np.nan)
+        transfers, collectives = [], []
+        for i, step in enumerate(steps):
+            slab = self._slab(step)
+            compute[i], exchange[i], duration[i] = slab.compute[rows], slab.exchange[rows], slab.duration[rows]
+            transfers.extend(slab.transfers)
+            collectives.extend(slab.collectives)
+        ranks = np.array(rank_ids, dtype=np.int32)
+        return Window(
+            layers=tuple(self.layers),
+            nodes=tuple(n.name for n in self.nodes),
+            ranks=ranks,
+            rank_node=np.array([self.ranks[r].node for r in ranks.tolist()], dtype=np.int32),
+            steps=np.array(steps, dtype=np.int64),
+            compute_s=compute,
+            exchange_s=exchange,
+            step_s=duration,
+            transfers=_transfers(transfers),
+            collectives=_collectives(collectives),
+        )
+
+    def series(self) -> RunSeries:
+        steps = sorted(self._series_step)
+        pairs = tuple(sorted(self._pairs, key=self._pairs.__getitem__))
+        link_bytes = np.full((len(steps), len(pairs)), np.nan)
+        link_seconds = np.full((len(steps), len(pairs)), np.nan)
+        column = {pair: i for i, pair in enumerate(pairs)}
+        for i, step in enumerate(steps):
+            for pair, (nbytes, seconds) in self._series_links.get(step, {}).items():
+                link_bytes[i, column[pair]] = nbytes
+                link_seconds[i, column[pair]] = seconds
+        return RunSeries(
+            steps=np.array(steps, dtype=np.int64),
+            step_s=np.array([self._series_step[s] for s in steps], dtype=np.float64),
+            links=pairs,
+            link_bytes=link_bytes,
+            link_transfer_s=link_seconds,
+        )
+
+    def totals_ns(self) -> tuple[np.ndarray, np.ndarray]:
+        """Whole-run compute and exchange nanoseconds [R, L] (exact integer sums), ranks ascending."""
+        rows = [self._row[r] for r in sorted(self._row)]
+        return self.total_compute_ns[rows], self.total_exchange_ns[rows]
+
+
+_COLLECTIVE_VALUES = np.array(sorted(int(op) for op in wire.COLLECTIVE_OPS), dtype=np.int64)
+
+
+def _grown(array: np.ndarray, shape: tuple[int, ...], fill: float) -> np.ndarray:
+    grown = np.full(shape, fill, dtype=array.dtype)
+    grown[tuple(slice(0, n) for n in array.shape)] = array
+    return grown
+
+
+def _transfers(parts: list[np.ndarray]) -> Transfers:
+    if not parts:
+        return Transfers.empty()
+    t = np.hstack(parts)
+    return Transfers(t[0].astype(np.int64), t[1].astype(np.int32), t[2].astype(np.int32), t[3].astype(np.int32),
+                     t[4].astype(np.int64), t[5], t[6], t[7])
+
+
+def _collectives(parts: list[np.ndarray]) -> Collectives:
+    if not parts:
+        return Collectives.empty()
+    c = np.hstack(parts)
+    return Collectives(c[0].astype(np.int64), c[1].astype(np.int32), c[2].astype(np.int32),
+                       c[3].astype(np.int16), c[4].astype(np.int32), c[5].astype(np.int64), c[6])
