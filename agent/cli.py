@@ -1,0 +1,186 @@
+"""``watchtower-agent``: run the node daemon, or the miniature halo-exchange job to watch.
+
+Usage errors and start-up failures print one line, ``watchtower-agent: error: <reason>``, and exit 2;
+a job that fails while running (a neighbour went away) exits 1. Endpoints are checked here, before
+ZeroMQ sees them, so a typo reads as a sentence rather than an errno.
+"""
+
+from __future__ import annotations
+
+import argparse
+import ipaddress
+import math
+import re
+import signal
+import socket
+import sys
+import threading
+from collections.abc import Callable, Sequence
+from typing import NoReturn
+
+from agent.daemon import DaemonError, default_local_endpoint, run_daemon
+from agent.workload import ConnectError, WorkloadConfig, WorkloadError, run_workload
+
+PROG = "watchtower-agent"
+USAGE_ERROR = 2
+RUN_ERROR = 1
+MAX_IPC_PATH = 107  # sun_path holds 108 bytes including the terminating NUL
+_HOSTNAME = re.compile(r"^(?=.{1,253}$)[A-Za-z0-9_]([A-Za-z0-9_-]{0,62})(\.[A-Za-z0-9_]([A-Za-z0-9_-]{0,62}))*\.?$")
+
+
+class UsageError(Exception):
+    """A bad command line: reported as one line with exit status 2."""
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse that raises instead of printing usage and exiting, so ``main`` can return a status."""
+
+    def error(self, message: str) -> NoReturn:
+        raise UsageError(message)
+
+
+# ---------------------------------------------------------------------------------------- validation
+
+def _host(text: str) -> str:
+    """A host name or an IP address (IPv6 in brackets); returns it without brackets."""
+    if text.startswith("[") and text.endswith("]"):
+        try:
+            return str(ipaddress.IPv6Address(text[1:-1]))
+        except ValueError:
+            raise ValueError(f"bad IPv6 address {text!r}") from None
+    if not _HOSTNAME.match(text):
+        raise ValueError(f"bad host {text!r}")
+    return text
+
+
+def _port(text: str) -> int:
+    if not text.isdigit() or not 0 < int(text) < 65536:
+        raise ValueError(f"bad port {text!r} (expected 1-65535)")
+    return int(text)
+
+
+def host_port(text: str) -> tuple[str, int]:
+    """``HOST:PORT`` (``[v6]:PORT`` for IPv6) -> (host, port)."""
+    host, sep, port = text.rpartition(":")
+    if not sep or not host:
+        raise ValueError(f"{text!r} is not HOST:PORT")
+    return _host(host), _port(port)
+
+
+def endpoint(text: str) -> str:
+    """A ZeroMQ endpoint this tool accepts: ``tcp://host:port`` or ``ipc://path``."""
+    scheme, sep, rest = text.partition("://")
+    if not sep or scheme not in ("tcp", "ipc"):
+        raise argparse.ArgumentTypeError(f"{text!r} is not tcp://HOST:PORT or ipc://PATH")
+    if scheme == "ipc":
+        if not rest or len(rest.encode()) > MAX_IPC_PATH or "\0" in rest:
+            raise argparse.ArgumentTypeError(f"{text!r}: ipc path must be 1-{MAX_IPC_PATH} bytes")
+        return text
+    try:
+        host_port(rest)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(f"{text!r}: {exc}") from None
+    return text
+
+
+def peer_list(text: str) -> tuple[tuple[str, int], ...]:
+    try:
+        peers = tuple(host_port(item.strip()) for item in text.split(","))
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    if len(set(peers)) != len(peers):
+        raise argparse.ArgumentTypeError("the same HOST:PORT is listed twice")
+    return peers
+
+
+def _positive(kind: type[int] | type[float], allow_zero: bool = False) -> Callable[[str], int | float]:
+    """An argparse type for a finite number above zero (or at least zero)."""
+    def parse(text: str) -> int | float:
+        try:
+            value = kind(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+        if not math.isfinite(value) or value < 0 or (value == 0 and not allow_zero):
+            raise argparse.ArgumentTypeError(f"{text!r} must be {'>= 0' if allow_zero else '> 0'}")
+        return value
+    return parse
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog=PROG, description="Node side of Watchtower.")
+    commands = parser.add_subparsers(dest="command", required=True, metavar="{run,workload}")
+
+    run = commands.add_parser("run", help="relay local probes to the collector and report node figures")
+    run.add_argument("--collector", required=True, type=endpoint, help="collector endpoint, tcp://HOST:PORT")
+    run.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
+    run.add_argument("--local", type=endpoint, default=None,
+                     help=f"endpoint local probes publish to (default: {default_local_endpoint()})")
+    run.add_argument("--interval", type=_positive(float), default=1.0, help="seconds between node samples")
+
+    job = commands.add_parser("workload", help="run one rank of a ring halo-exchange job to watch")
+    job.add_argument("--rank", required=True, type=_positive(int, allow_zero=True))
+    job.add_argument("--peers", required=True, type=peer_list,
+                     help="HOST:PORT where each rank listens, in rank order (world = their count)")
+    job.add_argument("--collector", required=True, type=endpoint,
+                     help="where this rank's probe publishes (collector or node daemon)")
+    job.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
+    job.add_argument("--steps", type=_positive(int, allow_zero=True), default=10)
+    job.add_argument("--layers", type=_positive(int), default=8)
+    job.add_argument("--exchange-bytes", type=_positive(int, allow_zero=True), default=65536,
+                     help="mean halo size; layers vary from 1/8 to 2 times it")
+    job.add_argument("--compute-ms", type=_positive(float, allow_zero=True), default=5.0,
+                     help="compute time per layer")
+    job.add_argument("--seed", type=int, default=0)
+    job.add_argument("--connect-timeout", type=_positive(float), default=30.0,
+                     help="seconds to wait for neighbours to come up")
+    return parser
+
+
+# ---------------------------------------------------------------------------------------- commands
+
+def _run(args: argparse.Namespace) -> int:
+    stop = threading.Event()
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(signum, lambda *_: stop.set())
+    run_daemon(args.collector, args.node, args.local, args.interval, stop)
+    return 0
+
+
+def _workload(args: argparse.Namespace) -> int:
+    if args.rank >= len(args.peers):
+        raise UsageError(f"--rank {args.rank} is outside the {len(args.peers)} ranks listed in --peers")
+    if args.layers > 4096:
+        raise UsageError("--layers is capped at 4096 (the wire format's limit)")
+    config = WorkloadConfig(rank=args.rank, peers=args.peers, collector=args.collector, node=args.node,
+                            steps=args.steps, layers=args.layers, exchange_bytes=args.exchange_bytes,
+                            compute_ms=args.compute_ms, seed=args.seed, connect_timeout_s=args.connect_timeout)
+    result = run_workload(config)
+    print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
+    return 0
+
+
+def _fail(message: str, status: int) -> int:
+    print(f"{PROG}: error: {' '.join(message.split())}", file=sys.stderr)
+    return status
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except UsageError as exc:
+        return _fail(str(exc), USAGE_ERROR)
+    except SystemExit as exc:  # --help: argparse printed it and wants to exit
+        return exc.code if isinstance(exc.code, int) else 0
+    try:
+        return _run(args) if args.command == "run" else _workload(args)
+    except (UsageError, DaemonError, ConnectError) as exc:
+        return _fail(str(exc), USAGE_ERROR)
+    except WorkloadError as exc:
+        return _fail(str(exc), RUN_ERROR)
+    except KeyboardInterrupt:
+        return _fail("interrupted", 130)
+
+
+if __name__ == "__main__":
+    sys.exit(main())

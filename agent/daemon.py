@@ -1,0 +1,221 @@
+"""The node daemon: one uplink per node to the collector, plus the node's own figures.
+
+Local probes connect a DEALER to the daemon's ROUTER (an ipc endpoint). ZeroMQ's steerable proxy relays
+their frames to the collector through one DEALER, and replies (clock pongs) back by the routing envelope
+the ROUTER added. At the collector a relayed frame arrives as
+``[daemon id, probe id, b"", header, ...]``: everything up to the empty delimiter is envelope.
+
+The daemon speaks for the node itself through a DEALER of its own, connected to its ROUTER over inproc, so
+its SCHEMA (rank -1) and NODE samples share the uplink. It follows the probe's rules: sequence numbers on
+every frame, NOBLOCK sends, drops counted and the schema re-announced after one.
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import secrets
+import socket
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+import zmq
+
+from agent import wire
+from agent.nodestats import NodeFigures, NodeSampler
+from agent.probe import CLOCK_EVERY_S, SCHEMA_EVERY
+
+LINGER_MS = 500  # on stop, frames still queued for the collector get this long to leave
+UPLINK_HWM = 10_000  # frames the uplink holds while the collector is away; beyond, probes drop and count
+PUBLISH_HWM = 64
+PONG_WAIT_MS = 200  # how long the daemon waits for the collector's answer to a clock ping
+
+
+class DaemonError(RuntimeError):
+    """The daemon could not start (for example its local endpoint cannot be bound)."""
+
+
+def default_local_endpoint() -> str:
+    """A per-user ipc endpoint in the temporary folder, so probes on this node can find it without flags."""
+    return f"ipc://{Path(tempfile.gettempdir()) / f'watchtower-agent-{os.getuid()}' / 'daemon.ipc'}"
+
+
+class NodeDaemon:
+    """Binds and connects in ``__init__`` (errors surface there), relays in ``serve``, cleans up in ``close``."""
+
+    def __init__(self, collector_endpoint: str, node: str, local_endpoint: str | None = None, *,
+                 interval_s: float = 1.0, sampler: NodeSampler | None = None,
+                 context: zmq.Context | None = None) -> None:
+        if interval_s <= 0:
+            raise ValueError("the sampling interval must be positive")
+        self.node = node
+        self.interval_s = interval_s
+        self.local_endpoint = local_endpoint or default_local_endpoint()
+        self.sender = secrets.randbits(63)
+        self.seq = 0
+        self.dropped = 0
+        self.offset_ns: int | None = None
+        self._schema_sent_at = -SCHEMA_EVERY
+        self._schema_dirty = True
+        self._next_ping = 0.0
+        self.pong_wait_ms = PONG_WAIT_MS
+        self._sampler = sampler or NodeSampler()
+        self._ipc_path: Path | None = None  # set once bound: the file close() removes
+        self._made_dir = self._prepare_ipc(self.local_endpoint)
+        self._own_context = context is None
+        self._ctx = context or zmq.Context()
+        self._sockets: list[zmq.Socket] = []
+        inproc = f"inproc://watchtower-daemon-{self.sender:x}"
+        try:
+            self._frontend = self._socket(zmq.ROUTER, linger=0)
+            self._frontend.bind(self.local_endpoint)
+            if self.local_endpoint.startswith("ipc://"):
+                self._ipc_path = Path(self.local_endpoint.removeprefix("ipc://"))
+            self._frontend.bind(inproc)
+            self._backend = self._socket(zmq.DEALER, linger=LINGER_MS)
+            self._backend.setsockopt(zmq.SNDHWM, UPLINK_HWM)
+            self._backend.connect(collector_endpoint)
+            self._control = self._socket(zmq.PAIR, linger=0)
+            self._control.bind(f"{inproc}-control")
+            self._steer = self._socket(zmq.PAIR, linger=0)
+            self._steer.connect(f"{inproc}-control")
+            self._publisher = self._socket(zmq.DEALER, linger=LINGER_MS)
+            self._publisher.setsockopt(zmq.SNDHWM, PUBLISH_HWM)
+            self._publisher.connect(inproc)
+        except zmq.ZMQError as exc:
+            self.close()
+            raise DaemonError(f"cannot start the relay ({self.local_endpoint} -> {collector_endpoint}): "
+                              f"{exc.strerror}") from None
+
+    def _socket(self, kind: int, *, linger: int) -> zmq.Socket:
+        sock = self._ctx.socket(kind)
+        sock.setsockopt(zmq.LINGER, linger)
+        self._sockets.append(sock)
+        return sock
+
+    @staticmethod
+    def _prepare_ipc(endpoint: str) -> Path | None:
+        """Create the folder of an ipc endpoint (private to this user); returns it if close must remove it."""
+        if not endpoint.startswith("ipc://"):
+            return None
+        path = Path(endpoint.removeprefix("ipc://"))
+        if path.exists() and _listening(path):  # binding would silently take the socket from it
+            raise DaemonError(f"another process already listens on {endpoint}")
+        if path.parent.is_dir():
+            return None
+        try:
+            path.parent.mkdir(mode=0o700, parents=True)
+        except OSError as exc:
+            raise DaemonError(f"cannot create {path.parent}: {exc.strerror}") from None
+        return path.parent
+
+    # ------------------------------------------------------------------------------------ running
+    def serve(self, stop: threading.Event) -> None:
+        """Relay and sample until ``stop`` is set; then stop the proxy and return."""
+        proxy = threading.Thread(target=zmq.proxy_steerable, name="watchtower-relay", daemon=True,
+                                 args=(self._frontend, self._backend, None, self._control))
+        proxy.start()
+        try:
+            self._send_schema()
+            next_at = time.monotonic() + self.interval_s
+            while not stop.wait(max(0.0, next_at - time.monotonic())):
+                next_at = max(next_at + self.interval_s, time.monotonic())
+                self.publish(self._sampler.sample())
+        finally:
+            self._steer.send(b"TERMINATE")
+            proxy.join()
+
+    def publish(self, figures: NodeFigures) -> bool:
+        """Send one NODE sample (and the schema when due), then sync the clock when due.
+        Returns False when the sample was dropped."""
+        if self._schema_dirty or self.seq - self._schema_sent_at >= SCHEMA_EVERY:
+            self._send_schema()
+        sent = self._send(wire.encode_node(
+            self.sender, self.seq, time.time_ns(), cpu_percent=figures.cpu_percent,
+            memory_percent=figures.memory_percent, interval_s=figures.interval_s, nics=figures.nics,
+            nic_values=figures.nic_values))
+        self._sync_clock()
+        return sent
+
+    def _send_schema(self) -> None:
+        frames = wire.encode_schema(self.sender, self.seq, time.time_ns(), schema_id=1, rank=-1, world=1,
+                                    node=self.node, layers=())
+        self._schema_sent_at = self.seq
+        if self._send(frames):
+            self._schema_dirty = False
+
+    def _send(self, frames: list[bytes]) -> bool:
+        self.seq += 1
+        try:
+            self._publisher.send_multipart([b"", *frames], flags=zmq.NOBLOCK, copy=False)
+        except zmq.Again:
+            self.dropped += 1
+            self._schema_dirty = True
+            return False
+        return True
+
+    def _sync_clock(self) -> None:
+        """Now and then, measure the node's clock offset to the collector (the NTP estimate).
+
+        Unlike a probe, the daemon can afford to wait briefly for the pong, and must: a pong read late makes
+        t3 late and biases the offset by half the delay. So a pong that misses the wait is discarded.
+        """
+        while self._publisher.poll(0):  # late pongs from an earlier ping
+            self._publisher.recv_multipart()
+        now = time.monotonic()
+        if now < self._next_ping:
+            return
+        self._next_ping = now + CLOCK_EVERY_S
+        t0 = time.time_ns()
+        if not self._send(wire.encode_ping(self.sender, self.seq, t0)) or not self._publisher.poll(self.pong_wait_ms):
+            return
+        reply = self._publisher.recv_multipart()
+        t3 = time.time_ns()
+        try:
+            message = wire.decode(reply[1:] if reply and not reply[0] else reply)
+        except wire.WireError:
+            return
+        if isinstance(message, wire.ClockPong) and message.t0 == t0:
+            self.offset_ns, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
+            self._send(wire.encode_offset(self.sender, self.seq, t3, self.offset_ns, delay))
+
+    # ------------------------------------------------------------------------------------ cleanup
+    def close(self) -> None:
+        """Close the sockets and remove the ipc socket file (and its folder, if the daemon made it)."""
+        for sock in self._sockets:
+            sock.close()
+        self._sockets.clear()
+        if self._own_context:
+            self._ctx.term()
+        if self._ipc_path is not None:
+            self._ipc_path.unlink(missing_ok=True)
+            self._ipc_path = None
+        if self._made_dir is not None:
+            try:
+                self._made_dir.rmdir()
+            except OSError as exc:  # someone else put files there: leave the folder
+                if exc.errno not in (errno.ENOTEMPTY, errno.ENOENT):
+                    raise
+            self._made_dir = None
+
+
+def _listening(path: Path) -> bool:
+    """Whether something accepts connections on the unix socket at ``path`` (else the file is stale)."""
+    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as probe:
+        try:
+            probe.connect(str(path))
+        except OSError:
+            return False
+    return True
+
+
+def run_daemon(collector_endpoint: str, node: str, local_endpoint: str | None = None, interval_s: float = 1.0,
+               stop_event: threading.Event | None = None) -> None:
+    """Run a node daemon until ``stop_event`` is set (forever without one)."""
+    daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s)
+    try:
+        daemon.serve(stop_event or threading.Event())
+    finally:
+        daemon.close()

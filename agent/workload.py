@@ -1,0 +1,354 @@
+"""A real miniature model-parallel job for Watchtower to watch: a ring of ranks exchanging halos over TCP.
+
+Each rank owns a slab of an L-layer network. Per layer it computes (matrix products sized at startup to
+take about ``compute_ms``), then exchanges a halo with its ring neighbours (rank ± 1 mod world): it sends
+its halo to each and receives theirs, all at once from one thread with non-blocking sockets, as real halo
+exchanges overlap their transfers. Halo sizes vary by layer (``exchange_bytes`` × a factor from 1/8 to 2,
+the same for every rank) so that link models t = α + n/β can be fitted from the records.
+
+Records (see ``agent.probe``), one per message:
+
+- SEND to a neighbour: from the start of the layer's halo phase until the last byte of the message was
+  accepted by the kernel; ``nbytes`` is the halo (the 32-byte message header is not counted).
+- RECV from a neighbour: from the start of the halo phase until the last byte of that neighbour's
+  message was read; ``wait`` is the part before the neighbour stamped the start of its send (the
+  neighbour was not ready yet), the rest is transfer. The stamp is the sender's ``time.time_ns()``, so
+  the split assumes the two hosts' wall clocks agree (same host, or NTP-synchronised hosts).
+
+World 1 has no neighbours: layers only compute. World 2 has one neighbour on both sides: the halo is
+exchanged once per layer with it (one SEND and one RECV), not twice.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import selectors
+import socket
+import struct
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import zmq
+
+from agent import wire
+from agent.probe import Exchange, Probe
+
+SLAB = 64  # side of each rank's square slab; a 64×64 float64 product takes tens of microseconds
+CALIBRATE_NS = 20_000_000  # time spent measuring the cost of one compute repetition at startup
+MAX_HALO_BYTES = 1 << 30
+HELLO = struct.Struct("<4sII")  # magic, rank, world: the first bytes on a new link
+HELLO_MAGIC = b"wtlk"
+HALO = struct.Struct("<4sIIqQI")  # magic, step, layer, sender wall ns at send start, halo bytes, reserved
+HALO_MAGIC = b"wtha"
+
+
+class WorkloadError(RuntimeError):
+    """The job failed while running (a neighbour went away or spoke out of turn)."""
+
+
+class ConnectError(WorkloadError):
+    """The ring could not be set up: own address not bindable, or a neighbour unreachable in time."""
+
+
+@dataclass(frozen=True, slots=True)
+class WorkloadConfig:
+    rank: int
+    peers: tuple[tuple[str, int], ...]  # peers[i] is where rank i listens
+    collector: str | None  # where the probe publishes; None keeps frames in memory (tests)
+    node: str
+    steps: int = 10
+    layers: int = 8
+    exchange_bytes: int = 65536
+    compute_ms: float = 5.0
+    seed: int = 0
+    connect_timeout_s: float = 30.0
+
+
+@dataclass(frozen=True, slots=True)
+class WorkloadResult:
+    steps: int
+    dropped: int  # frames the probe could not queue
+    frames: list[list[bytes]]  # the probe's frames when it published nowhere
+
+
+def neighbours(rank: int, world: int) -> list[int]:
+    """The distinct ring neighbours of ``rank``: none in world 1, one in world 2, else two."""
+    return sorted({(rank - 1) % world, (rank + 1) % world} - {rank})
+
+
+def halo_sizes(exchange_bytes: int, layers: int, seed: int) -> list[int]:
+    """Per-layer halo bytes: ``exchange_bytes`` × factors spread geometrically from 1/8 to 2, shuffled
+    by ``seed`` (the same on every rank, so both ends of a link agree)."""
+    if layers == 1:
+        return [exchange_bytes]
+    factors = np.geomspace(1 / 8, 2, layers)
+    np.random.default_rng(seed).shuffle(factors)
+    return [round(exchange_bytes * f) for f in factors]
+
+
+class Slab:
+    """One rank's share of the model: real matrix products, deterministic from the seed."""
+
+    def __init__(self, rank: int, layers: int, seed: int) -> None:
+        weights = np.random.default_rng([seed, 0])
+        self.weights = [weights.standard_normal((SLAB, SLAB)) / np.sqrt(SLAB) for _ in range(layers)]
+        self.x = np.random.default_rng([seed, 1, rank]).standard_normal((SLAB, SLAB))
+        self._tmp = np.empty_like(self.x)
+
+    def compute(self, layer: int, reps: int) -> None:
+        for _ in range(reps):
+            np.matmul(self.x, self.weights[layer], out=self._tmp)
+            np.tanh(self._tmp, out=self.x)
+
+    def reps_for(self, compute_ms: float) -> int:
+        """How many repetitions take about ``compute_ms`` on this machine, measured once."""
+        if compute_ms <= 0:
+            return 0
+        self.compute(0, 3)  # warm caches and the BLAS
+        reps, start = 0, time.perf_counter_ns()
+        while (elapsed := time.perf_counter_ns() - start) < CALIBRATE_NS:
+            self.compute(0, 10)
+            reps += 10
+        return max(1, round(compute_ms * 1e6 * reps / elapsed))
+
+    def halo(self, nbytes: int) -> np.ndarray:
+        """The slab's bytes repeated to ``nbytes``: what a neighbour needs of this rank's boundary."""
+        return np.resize(self.x.view(np.uint8).ravel(), nbytes)
+
+    def absorb(self, halo: bytes) -> None:
+        """Blend a neighbour's halo into the boundary row, so the next layer depends on it."""
+        values = np.frombuffer(halo[: min(len(halo) // 8, SLAB) * 8], dtype=np.float64)
+        self.x[0, : len(values)] = 0.5 * (self.x[0, : len(values)] + values)
+
+
+# ---------------------------------------------------------------------------------------- ring setup
+
+def _listen(host: str, port: int) -> socket.socket:
+    try:
+        family = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)[0][0]
+        return socket.create_server((host, port), family=family)
+    except OSError as exc:
+        raise ConnectError(f"cannot listen on {host}:{port}: {exc.strerror or exc}") from None
+
+
+def _connect(peer: int, host: str, port: int, deadline: float) -> socket.socket:
+    """Connect, retrying while the neighbour has not started yet, until ``deadline``."""
+    pause = 0.02
+    while True:
+        remaining = deadline - time.monotonic()
+        if remaining <= 0:
+            raise ConnectError(f"cannot reach rank {peer} at {host}:{port} (gave up after the connect timeout)")
+        try:
+            return socket.create_connection((host, port), timeout=min(remaining, 2.0))
+        except OSError:  # refused, unreachable, timed out: the peer may simply not be listening yet
+            time.sleep(min(pause, max(deadline - time.monotonic(), 0)))
+            pause = min(pause * 2, 0.5)
+
+
+def _read_exact(sock: socket.socket, size: int) -> bytes:
+    data = bytearray()
+    while len(data) < size:
+        chunk = sock.recv(size - len(data))
+        if not chunk:
+            raise ConnectionError("closed during the hello")
+        data += chunk
+    return bytes(data)
+
+
+def connect_ring(rank: int, peers: tuple[tuple[str, int], ...], timeout_s: float,
+                 listener: socket.socket | None = None) -> dict[int, socket.socket]:
+    """Links to the ring neighbours, keyed by rank. Each link is one TCP connection, made by the lower
+    rank of the pair: so every rank listens, connects up, then accepts from below."""
+    world = len(peers)
+    if world == 1:  # nobody to talk to: no need to hold a port
+        if listener is not None:
+            listener.close()
+        return {}
+    deadline = time.monotonic() + timeout_s
+    listener = listener or _listen(*peers[rank])
+    links: dict[int, socket.socket] = {}
+    try:
+        with listener:
+            for peer in (p for p in neighbours(rank, world) if p > rank):
+                sock = _connect(peer, *peers[peer], deadline)
+                links[peer] = sock
+                sock.sendall(HELLO.pack(HELLO_MAGIC, rank, world))
+            waiting = {p for p in neighbours(rank, world) if p < rank}
+            while waiting:
+                links.update(_accept(listener, rank, world, waiting, deadline))
+                waiting -= links.keys()
+    except (ConnectError, OSError) as exc:
+        for sock in links.values():
+            sock.close()
+        if isinstance(exc, ConnectError):
+            raise
+        raise ConnectError(f"setting up the ring failed: {exc.strerror or exc}") from None
+    for sock in links.values():
+        sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        sock.settimeout(None)
+        sock.setblocking(False)
+    return links
+
+
+def _accept(listener: socket.socket, rank: int, world: int, waiting: set[int],
+            deadline: float) -> dict[int, socket.socket]:
+    """Accept one connection; a stranger (wrong magic or rank) is closed and ignored."""
+    remaining = deadline - time.monotonic()
+    if remaining <= 0:
+        missing = ", ".join(str(p) for p in sorted(waiting))
+        raise ConnectError(f"rank {missing} did not connect to rank {rank} within the connect timeout")
+    listener.settimeout(remaining)
+    try:
+        sock, _ = listener.accept()
+    except TimeoutError:
+        return {}
+    sock.settimeout(max(deadline - time.monotonic(), 0.001))
+    try:
+        magic, peer, peer_world = HELLO.unpack(_read_exact(sock, HELLO.size))
+    except (OSError, ConnectionError):
+        sock.close()
+        return {}
+    if magic != HELLO_MAGIC or peer not in waiting:
+        sock.close()
+        return {}
+    if peer_world != world:
+        sock.close()
+        raise ConnectError(f"rank {peer} runs with {peer_world} peers, this rank with {world}")
+    return {peer: sock}
+
+
+# ---------------------------------------------------------------------------------------- halo phase
+
+class _Link:
+    """One neighbour's side of a halo phase: our outgoing message and its incoming one."""
+
+    __slots__ = ("header_done", "incoming", "out", "peer", "received", "recv_ex", "send_ex", "sent", "sock",
+                 "want")
+
+    def __init__(self, peer: int, sock: socket.socket, capacity: int) -> None:
+        self.peer, self.sock = peer, sock
+        self.out = bytearray(HALO.size + capacity)
+        self.incoming = bytearray(HALO.size + capacity)
+        self.sent = self.received = 0
+        self.want = HALO.size  # bytes expected so far: the header, then header and halo
+        self.header_done = False
+        self.send_ex: Exchange | None = None
+        self.recv_ex: Exchange | None = None
+
+
+class HaloRing:
+    """Runs halo phases over established links, timing every message with the probe."""
+
+    def __init__(self, links: dict[int, socket.socket], capacity: int, idle_timeout_s: float) -> None:
+        self.links = [_Link(peer, sock, capacity) for peer, sock in sorted(links.items())]
+        self.idle_timeout_s = idle_timeout_s
+        self._selector = selectors.DefaultSelector()
+
+    def exchange(self, probe: Probe, step: int, layer: int, name: str, halo: np.ndarray) -> list[bytes]:
+        """Send ``halo`` to every neighbour and receive theirs, overlapped. Returns the start of each
+        received halo (the boundary values a slab absorbs), copied so the buffers can be reused."""
+        n = len(halo)
+        for link in self.links:
+            link.send_ex = probe.exchange(name, peer=link.peer, nbytes=n, op=wire.Op.SEND)
+            link.recv_ex = probe.exchange(name, peer=link.peer, nbytes=0, op=wire.Op.RECV)
+        for link in self.links:
+            HALO.pack_into(link.out, 0, HALO_MAGIC, step, layer, time.time_ns(), n, 0)
+            link.out[HALO.size : HALO.size + n] = halo.data
+            link.sent, link.received, link.want, link.header_done = 0, 0, HALO.size, False
+            self._selector.register(link.sock, selectors.EVENT_READ | selectors.EVENT_WRITE, link)
+        pending = len(self.links)
+        while pending:
+            events = self._selector.select(self.idle_timeout_s)
+            if not events:
+                raise WorkloadError(f"no halo traffic for {self.idle_timeout_s:g} s in step {step} layer {layer}")
+            for key, mask in events:
+                link = key.data
+                if mask & selectors.EVENT_WRITE and link.send_ex is not None:
+                    self._write(link, HALO.size + n)
+                if mask & selectors.EVENT_READ and link.recv_ex is not None:
+                    self._read(link, step, layer)
+                if link.send_ex is None and link.recv_ex is None:
+                    self._selector.unregister(link.sock)
+                    pending -= 1
+                elif link.send_ex is None and key.events & selectors.EVENT_WRITE:  # sent: now only read
+                    self._selector.modify(link.sock, selectors.EVENT_READ, link)
+        return [bytes(link.incoming[HALO.size : min(link.want, HALO.size + 8 * SLAB)]) for link in self.links]
+
+    def _write(self, link: _Link, total: int) -> None:
+        try:
+            link.sent += link.sock.send(memoryview(link.out)[link.sent : total])
+        except BlockingIOError:
+            return
+        except OSError as exc:
+            raise WorkloadError(f"sending to rank {link.peer} failed: {exc.strerror or exc}") from None
+        if link.sent == total:
+            link.send_ex.stop()
+            link.send_ex = None
+
+    def _read(self, link: _Link, step: int, layer: int) -> None:
+        try:
+            got = link.sock.recv_into(memoryview(link.incoming)[link.received : link.want])
+        except BlockingIOError:
+            return
+        except OSError as exc:
+            raise WorkloadError(f"receiving from rank {link.peer} failed: {exc.strerror or exc}") from None
+        if got == 0:
+            raise WorkloadError(f"rank {link.peer} closed its connection")
+        link.received += got
+        if link.received < link.want:
+            return
+        if not link.header_done:
+            magic, peer_step, peer_layer, sent_wall_ns, nbytes, _ = HALO.unpack_from(link.incoming)
+            if magic != HALO_MAGIC or (peer_step, peer_layer) != (step, layer) or nbytes > MAX_HALO_BYTES:
+                raise WorkloadError(f"rank {link.peer} sent step {peer_step} layer {peer_layer}, "
+                                    f"expected step {step} layer {layer}")
+            link.recv_ex.peer_ready_at_wall(sent_wall_ns)
+            link.header_done = True
+            link.want = HALO.size + nbytes
+            if len(link.incoming) < link.want:  # the neighbour runs with larger halos than we do
+                link.incoming.extend(bytes(link.want - len(link.incoming)))
+            if link.received < link.want:
+                return
+        link.recv_ex.stop(nbytes=link.want - HALO.size)
+        link.recv_ex = None
+
+    def close(self) -> None:
+        self._selector.close()
+        for link in self.links:
+            with contextlib.suppress(OSError):  # the neighbour already closed: nothing left to flush
+                link.sock.shutdown(socket.SHUT_WR)
+            link.sock.close()
+
+
+# ---------------------------------------------------------------------------------------- the job
+
+def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) -> WorkloadResult:
+    """Run the job for ``config.steps`` steps. ``listener`` may be a socket already bound to this rank's
+    address (tests bind port 0 to avoid races). Raises ``ConnectError`` / ``WorkloadError``."""
+    world = len(config.peers)
+    names = [f"layer.{i:02d}" for i in range(config.layers)]
+    sizes = halo_sizes(config.exchange_bytes, config.layers, config.seed)
+    slab = Slab(config.rank, config.layers, config.seed)
+    reps = slab.reps_for(config.compute_ms)
+    with contextlib.ExitStack() as cleanup:  # unwinds in reverse: links, then probe, then its context
+        ctx = zmq.Context()
+        cleanup.callback(ctx.term)  # waits up to the probe's linger for queued frames to reach the collector
+        try:
+            probe = Probe(config.rank, world, config.node, config.collector, layers=names, job="halo-ring",
+                          context=ctx)
+        except zmq.ZMQError as exc:
+            raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
+        cleanup.callback(probe.close)
+        ring = HaloRing(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
+                        max(sizes), config.connect_timeout_s)
+        cleanup.callback(ring.close)
+        for step in range(config.steps):
+            for layer, name in enumerate(names):
+                with probe.compute(name):
+                    slab.compute(layer, reps)
+                if ring.links:
+                    for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
+                        slab.absorb(halo)
+            probe.end_step()
+    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)
