@@ -48,7 +48,9 @@ class Exchange:
     """One exchange being timed. Use as a context manager or call ``stop()``.
 
     If the caller learns when the peer was ready (for example a timestamp the sender put in the message,
-    on the same clock), ``peer_ready_at(t)`` splits the time into waiting and transfer. Exchanges of one
+    on the same clock), ``peer_ready_at(t)`` splits the time into waiting and transfer. The wait is negative
+    when the peer was ready first: its bytes were already moving, so the transfer proper began before this
+    call did, and the link model must count from the peer's start. Exchanges of one
     layer may overlap (a halo sent to two neighbours at once); the layer's exchange time counts the time
     at least one of them was in flight, once. Every started exchange must be stopped exactly once.
     """
@@ -70,7 +72,7 @@ class Exchange:
 
     def peer_ready_at(self, ready_ns: int) -> None:
         """Record that the peer was ready at ``ready_ns`` (probe clock): time before it was waiting."""
-        self.wait_ns = max(0, ready_ns - self.start)
+        self.wait_ns = ready_ns - self.start
 
     def peer_ready_at_wall(self, ready_wall_ns: int) -> None:
         """As ``peer_ready_at`` for a wall-clock (``time.time_ns``) stamp, e.g. one sent by the peer."""

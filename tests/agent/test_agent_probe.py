@@ -82,17 +82,17 @@ def test_wall_clock_ready_stamp_maps_onto_probe_clock() -> None:
     assert ex.wait_ns == 75
 
 
-def test_wait_is_clamped_into_the_exchange() -> None:
+def test_wait_is_negative_when_the_peer_started_first_and_clamped_at_the_end() -> None:
     clock = ManualClock()
     probe = _probe(clock)
     early = probe.exchange("l", peer=1)
-    early.peer_ready_at(clock() - 500)  # the peer was ready before we started: no wait
+    early.peer_ready_at(clock() - 500)  # the peer started first: its transfer began 500 ns before ours
     late = probe.exchange("l", peer=2)
     late.peer_ready_at(clock() + 10_000)  # a stamp beyond the end cannot exceed the exchange
     clock.advance(80)
     early.stop()
     late.stop()
-    assert (early.wait_ns, late.wait_ns) == (0, 80)
+    assert (early.wait_ns, late.wait_ns) == (-500, 80)
 
 
 def test_overlapping_exchanges_count_once_in_layer_time() -> None:

@@ -17,8 +17,9 @@ class Transfers:
     """Point-to-point transfers, one entry per received message (columnar, all arrays of length E).
 
     ``src``/``dst`` are rank ids. ``start_s``/``end_s`` are on the collector's clock (offsets applied).
-    ``wait_s`` is the part of the exchange spent waiting for the peer (NaN when unknown), so the transfer
-    proper took ``end_s - start_s - wait_s``.
+    ``wait_s`` is when the peer became ready, relative to ``start_s`` (NaN when unknown): positive, the
+    receiver waited that long; negative, the peer started first and its bytes were already moving. Either
+    way the transfer proper took ``end_s - start_s - wait_s``.
     """
 
     step: np.ndarray  # int64
@@ -84,6 +85,27 @@ class Window:
     @property
     def shape(self) -> tuple[int, int, int]:
         return self.compute_s.shape  # type: ignore[return-value]
+
+    def rank_index(self, rank_ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Positions of rank ids in ``ranks`` (int64) and a mask of the ids this window knows."""
+        return _index_in(np.asarray(self.ranks), rank_ids)
+
+    def step_index(self, step_ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Positions of step indices in ``steps`` (int64) and a mask of the steps in this window."""
+        return _index_in(np.asarray(self.steps), step_ids)
+
+
+def _index_in(sorted_ids: np.ndarray, ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    n = len(sorted_ids)
+    if n == 0:
+        return np.zeros(len(ids), np.int64), np.zeros(len(ids), bool)
+    first = int(sorted_ids[0])
+    if int(sorted_ids[-1]) - first == n - 1:  # consecutive ids, the usual case: no search needed
+        pos = np.asarray(ids, np.int64) - first
+        known = (pos >= 0) & (pos < n)
+        return np.where(known, pos, 0), known
+    pos = np.clip(np.searchsorted(sorted_ids, ids), 0, n - 1).astype(np.int64)
+    return pos, sorted_ids[pos] == ids
 
 
 @dataclass(frozen=True)
