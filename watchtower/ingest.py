@@ -18,8 +18,10 @@ class Ingest:
         self.store = store or Store()
         self.ledger = ledger or Ledger()
         self.steps = 0
+        self.last_received_ns = 0  # the feed's "now": wall clock when live, the recording's clock on replay
 
     def feed(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> wire.Message | None:
+        self.last_received_ns = max(self.last_received_ns, received_ns)
         try:
             message = wire.decode(frames)
         except wire.WireError as exc:

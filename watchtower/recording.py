@@ -68,11 +68,14 @@ def encode_record(received_ns: int, frames: list[bytes] | list[memoryview]) -> b
 
 
 class Recorder:
-    """Appends records to a recording; creates the file with a preamble if it is new or empty."""
+    """Appends records to a recording; writes the preamble first if the file or stream is empty."""
 
-    def __init__(self, path: str | Path, meta: dict | None = None) -> None:
-        self.path = Path(path)
-        self._file: BinaryIO = open(self.path, "ab", buffering=0)  # noqa: SIM115 - lives as long as we do
+    def __init__(self, target: str | Path | BinaryIO, meta: dict | None = None) -> None:
+        if isinstance(target, str | Path):
+            self.path: Path | None = Path(target)
+            self._file: BinaryIO = open(self.path, "ab", buffering=0)  # noqa: SIM115 - lives as long as we do
+        else:  # an open binary stream, e.g. one that is compressed afterwards
+            self.path, self._file = None, target
         if self._file.tell() == 0:
             blob = json.dumps(meta or {}, ensure_ascii=False).encode()
             self._file.write(PREAMBLE + _META_LEN.pack(len(blob)) + blob)

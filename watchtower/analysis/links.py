@@ -1,0 +1,146 @@
+"""Per directed node pair: traffic, the Hockney fit, utilisation, slow-link verdicts and hours at stake.
+
+Transfers between two ranks of the same node never touch the network (shared memory or the node's own
+fabric), so they are kept apart as *local* links: fitted and reported, but neither judged slow against
+network links nor counted in hours at stake.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from watchtower.analysis.efficiency import OUTLIER_Z, RELATIVE_JITTER
+from watchtower.analysis.robust import fit_hockney, modified_z
+from watchtower.analysis.window import Window
+from watchtower.cluster import Cluster
+
+SLOW_FRACTION = 0.5  # common practice, no source: a link under half its nominal rate is broken, not busy
+
+
+@dataclass(frozen=True)
+class LinkStats:
+    """One directed node pair over the window.
+
+    ``bandwidth_Bps``/``latency_s`` are the Hockney β/α (α NaN when one message size gave no slope);
+    ``throughput_Bps`` = bytes / busy time (transfer time, known waits excluded); ``utilisation`` = bytes /
+    window wall time / nominal rate. ``score`` is the modified z-score of log β within the link's class.
+    ``hours_at_stake`` is the time the rest of the run would save if this slow link ran at its class's
+    median β (0 for links not judged slow; None without a configured total of steps).
+    """
+
+    src: int  # node index
+    dst: int
+    src_name: str
+    dst_name: str
+    link_class: str
+    local: bool
+    bytes: int
+    transfers: int
+    busy_s: float
+    latency_s: float
+    bandwidth_Bps: float
+    throughput_Bps: float
+    nominal_Bps: float | None
+    utilisation: float | None
+    score: float
+    slow: bool
+    reason: str  # "" | "outlier" | "below-nominal" | "outlier, below-nominal"
+    saving_per_step_s: float
+    hours_at_stake: float | None
+
+
+def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps: int | None, *,
+               slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
+    """All directed node pairs that carried traffic in the window, network links first, then local ones."""
+    tr = window.transfers
+    if len(tr) == 0 or len(window.ranks) == 0:
+        return ()
+    si, src_ok = window.rank_index(tr.src)
+    di, dst_ok = window.rank_index(tr.dst)
+    step_idx, step_ok = window.step_index(tr.step)
+    known = src_ok & dst_ok & step_ok
+    si, di, step_idx = si[known], di[known], step_idx[known]
+    n_nodes = len(window.nodes)
+    rank_node = np.asarray(window.rank_node, np.int64)
+    pairs, link = np.unique(rank_node[si] * n_nodes + rank_node[di], return_inverse=True)
+    n_links = len(pairs)
+    secs = tr.transfer_s[known]
+    nbytes = np.asarray(tr.nbytes[known], np.float64)
+    fit = fit_hockney(link, nbytes, secs, n_links)
+    total_bytes = np.bincount(link, weights=nbytes, minlength=n_links)
+    busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_links)
+    count = np.bincount(link, minlength=n_links)
+    src, dst = pairs // n_nodes, pairs % n_nodes
+    local = src == dst
+    names = window.nodes
+    classes = [cluster.link_class(names[s], names[d]) for s, d in zip(src, dst, strict=True)]
+    nominal = [None if lo else cluster.link_nominal_Bps(names[s], names[d])
+               for s, d, lo in zip(src, dst, local, strict=True)]
+
+    beta = fit.beta_Bps
+    score = np.full(n_links, np.nan)
+    median_beta = np.full(n_links, np.nan)
+    for cls in set(classes):
+        members = np.flatnonzero((np.array(classes) == cls) & ~local)
+        if len(members) == 0:
+            continue
+        with np.errstate(divide="ignore", invalid="ignore"):
+            score[members] = modified_z(np.log(beta[members]), min_scale=RELATIVE_JITTER)
+        median_beta[members] = np.nanmedian(beta[members]) if np.isfinite(beta[members]).any() else np.nan
+    outlier = np.nan_to_num(score, nan=0.0) < threshold
+    # Only a true two-point fit gives an asymptotic β comparable with a NIC rate; the effective rate of one
+    # small message size is mostly latency and would always look "below nominal".
+    nominal_arr = np.array([np.nan if v is None else v for v in nominal], dtype=np.float64)
+    below = (fit.sizes >= 2) & (beta < slow_fraction * nominal_arr)
+
+    slow = outlier | below
+    shrink = np.where(slow, _shrink(beta, median_beta, local), 0.0)  # only slow links put hours at stake
+    saving = _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps), len(window.ranks))
+    out = []
+    for i in np.argsort(local, kind="stable"):
+        nom = nominal[i]
+        reason = ", ".join(r for r, hit in (("outlier", outlier[i]), ("below-nominal", below[i])) if hit)
+        out.append(LinkStats(
+            src=int(src[i]), dst=int(dst[i]), src_name=names[src[i]], dst_name=names[dst[i]],
+            link_class=classes[i], local=bool(local[i]), bytes=int(total_bytes[i]), transfers=int(count[i]),
+            busy_s=float(busy[i]), latency_s=float(fit.alpha_s[i]), bandwidth_Bps=float(beta[i]),
+            throughput_Bps=float(total_bytes[i] / busy[i]) if busy[i] > 0 else float("nan"),
+            nominal_Bps=nom,
+            utilisation=None if nom is None or wall_s <= 0 else float(total_bytes[i] / wall_s / nom),
+            score=float(score[i]), slow=bool(reason), reason=reason, saving_per_step_s=float(saving[i]),
+            hours_at_stake=None if remaining_steps is None else remaining_steps * float(saving[i]) / 3600.0,
+        ))
+    return tuple(out)
+
+
+def _shrink(beta: np.ndarray, median_beta: np.ndarray, local: np.ndarray) -> np.ndarray:
+    """Share of each network link's transfer time that running at its class's median β would save."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        shrink = np.where(~local & (beta < median_beta), 1.0 - beta / median_beta, 0.0)
+    return np.nan_to_num(shrink, nan=0.0)
+
+
+def _saving_per_step(link: np.ndarray, step_idx: np.ndarray, dst_idx: np.ndarray, secs: np.ndarray,
+                     shrink: np.ndarray, n_steps: int, n_ranks: int) -> np.ndarray:
+    """Mean time per step saved if each link's transfers shrank by ``shrink`` (0 for links already fast).
+
+    Model: in each step, the rank that spent longest receiving over the link is taken to be on the
+    critical path, and its transfer time on the link shrinks by β / β_median. It is an upper estimate: it
+    assumes that rank's exchange is not hidden behind another rank's longer one.
+    """
+    n_links = len(shrink)
+    sel = shrink[link] > 0
+    if not sel.any() or n_steps == 0:
+        return np.zeros(n_links)
+    links_hit, dense = np.unique(link[sel], return_inverse=True)
+    # One int64 key per (link, step, receiving rank); sorted, so each (link, step) is a contiguous run.
+    key, inv = np.unique((dense * n_steps + step_idx[sel]) * n_ranks + dst_idx[sel], return_inverse=True)
+    per_rank = np.bincount(inv, weights=np.maximum(secs[sel], 0.0), minlength=len(key))
+    link_step = key // n_ranks
+    starts = np.flatnonzero(np.r_[True, link_step[1:] != link_step[:-1]])
+    worst = np.maximum.reduceat(per_rank, starts)
+    saved = np.zeros(n_links)
+    saved[links_hit] = np.bincount(link_step[starts] // n_steps, weights=worst, minlength=len(links_hit))
+    return saved * shrink / n_steps
