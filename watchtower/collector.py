@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import zmq
 
 from agent import wire
+from watchtower.attach import Beacon
 from watchtower.ingest import Ingest
 from watchtower.recording import Recorder
 
@@ -142,7 +143,9 @@ class Collector:
         with contextlib.suppress(zmq.Again):  # the agent pings again later; never block on an agent
             self.socket.send_multipart([*envelope, *pong], flags=zmq.NOBLOCK)
 
-    def run(self, stop: threading.Event, duration_s: float | None = None) -> None:
+    def run(self, stop: threading.Event, duration_s: float | None = None,
+            beacon: Beacon | None = None) -> None:
+        """Collect until ``stop`` is set or ``duration_s`` has passed, answering ``beacon`` queries too."""
         deadline = None if duration_s is None else time.monotonic() + duration_s
         while not stop.is_set():
             timeout = 100
@@ -151,6 +154,8 @@ class Collector:
                 if left <= 0:
                     break
                 timeout = max(1, min(timeout, int(left * 1000)))
+            if beacon is not None:
+                beacon.answer()
             self.drain(timeout)
 
     def close(self) -> None:

@@ -157,6 +157,14 @@ def _records(stream: BinaryIO, tail: Tail) -> Iterator[tuple[int, list[bytes]]]:
         yield record
 
 
+def resume_records(path: str | Path, tail: Tail) -> Iterator[tuple[int, list[bytes]]]:
+    """Records of an uncompressed recording from byte ``tail.consumed`` on, for following a file that a
+    collector is still appending to: a half-written last record ends the pass and is read whole next time."""
+    with open(path, "rb") as stream:
+        stream.seek(tail.consumed)
+        yield from _records(stream, tail)
+
+
 def _split_body(body: bytes) -> tuple[int, list[bytes]] | None:
     received_ns, n_parts = _BODY.unpack_from(body)
     view = memoryview(body)

@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from watchtower.analysis.summary import compare
-from watchtower.cluster import Cluster, ClusterConfigError, load_cluster
+from watchtower.cluster import Cluster
 from watchtower.errors import UsageError
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader
@@ -37,15 +37,9 @@ def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> d
     return snapshot
 
 
-def run_report(paths: list[Path], *, as_json: bool, cluster_path: Path | None, window: int | None) -> int:
+def run_report(paths: list[Path], *, as_json: bool, cluster: Cluster | None, window: int | None) -> int:
     if len(paths) > 2:
         raise UsageError("give one recording, or two to compare")
-    cluster = None
-    if cluster_path is not None:
-        try:
-            cluster = load_cluster(cluster_path)
-        except ClusterConfigError as exc:
-            raise UsageError(str(exc)) from None
     snapshots = [load_recording(path, cluster, window) for path in paths]
     for path, snapshot in zip(paths, snapshots, strict=True):
         if not snapshot["recording"]["complete"]:

@@ -274,17 +274,24 @@ class Store:
             self._slabs.popitem(last=False)
 
     # ------------------------------------------------------------------------------ snapshots
+    def newest_complete_step(self) -> int:
+        """The newest step every known rank has reported (the newest step at all when none is complete)."""
+        n_ranks = len(self._row)
+        for step in reversed(self._slabs):
+            if self._slabs[step].reported >= n_ranks:
+                return step
+        return next(reversed(self._slabs)) if self._slabs else -1
+
     def window(self, last: int | None = None) -> Window:
         """The recent steps as a Window: every step up to the newest one all known ranks reported."""
-        n_ranks, n_layers = len(self._row), len(self.layers)
-        complete = [s for s, slab in self._slabs.items() if slab.reported >= n_ranks]
-        newest = complete[-1] if complete else (next(reversed(self._slabs)) if self._slabs else -1)
+        n_layers = len(self.layers)
+        newest = self.newest_complete_step()
         steps = [s for s in self._slabs if s <= newest]
         if last is not None:
             steps = steps[-last:]
         rank_ids = sorted(self._row)
         rows = np.array([self._row[r] for r in rank_ids], dtype=np.int64)
-        shape = (len(steps), n_ranks, n_layers)
+        shape = (len(steps), len(rank_ids), n_layers)
         compute, exchange = np.full(shape, np.nan), np.full(shape, np.nan)
         duration = np.full(shape[:2], np.nan)
         transfers, collectives = [], []

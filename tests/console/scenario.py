@@ -1,0 +1,219 @@
+"""A deterministic job snapshot for the console tests, shaped exactly as docs/snapshot.md says.
+
+Six nodes of four ranks, twelve layers (three comm-bound), one slow link node-c→node-d explained by
+node-c's outgoing port, one straggler rank, an alert on that link and one on step time, some lost frames.
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+NODES = ["node-a", "node-b", "node-c", "node-d", "node-e", "node-f"]
+RANKS_PER_NODE = 4
+LAYERS = [
+    # name, compute_s, exchange_s (summed over the window on the mean rank)
+    ("embed", 0.80, 0.10),
+    ("block0.attn", 2.40, 0.60),
+    ("block0.mlp", 3.10, 0.40),
+    ("block1.attn", 2.40, 2.90),
+    ("block1.mlp", 3.10, 0.50),
+    ("block2.attn", 2.40, 0.70),
+    ("block2.mlp", 3.10, 3.60),
+    ("block3.attn", 2.40, 0.60),
+    ("block3.mlp", 3.10, 0.45),
+    ("norm", 0.20, 0.02),
+    ("head", 1.10, 0.30),
+    ("grad.allreduce", 0.30, 4.20),
+]
+NOMINAL = 12.5e9
+SLOW = ("node-c", "node-d")
+
+
+def _layers(step: int) -> list[dict[str, Any]]:
+    drift = (step % 100) / 1000.0
+    layers = []
+    for index, (name, compute, exchange) in enumerate(LAYERS):
+        exchange = round(exchange + drift, 6)
+        fraction = exchange / (compute + exchange)
+        worst = []
+        for k in range(3):
+            rank = (index * 5 + k * 7) % 24
+            w_exchange = exchange * (1.6 - 0.2 * k)
+            worst.append(
+                {
+                    "rank": rank,
+                    "node": NODES[rank // RANKS_PER_NODE],
+                    "compute_s": compute,
+                    "exchange_s": round(w_exchange, 6),
+                    "comm_fraction": w_exchange / (compute + w_exchange),
+                }
+            )
+        layers.append(
+            {
+                "name": name,
+                "compute_s": compute,
+                "exchange_s": exchange,
+                "comm_fraction": fraction,
+                "comm_fraction_worst": worst[0]["comm_fraction"],
+                "comm_bound": fraction > 0.5,
+                "worst_ranks": worst,
+            }
+        )
+    return layers
+
+
+def _links() -> list[dict[str, Any]]:
+    links = []
+    for i, src in enumerate(NODES):
+        for j, dst in enumerate(NODES):
+            if src == dst:
+                continue
+            slow = (src, dst) == SLOW
+            beta = 2.1e9 if slow else 11.0e9 - 0.35e9 * ((i + 2 * j) % 5)
+            throughput = beta * (0.62 if slow else 0.55)
+            links.append(
+                {
+                    "src": src,
+                    "dst": dst,
+                    "bytes": 40_000_000_000 + 1_000_000 * (i * 6 + j),
+                    "transfers": 2_400 + 10 * i + j,
+                    "bandwidth_Bps": beta,
+                    "latency_s": 1.2e-5 + 1e-6 * ((i + j) % 3),
+                    "throughput_Bps": throughput,
+                    "nominal_Bps": NOMINAL,
+                    "utilisation": throughput / NOMINAL,
+                    "slow": slow,
+                    "score": -6.3 if slow else round(0.4 - 0.3 * ((i + 2 * j) % 5), 2),
+                    "hours_at_stake": 1.3 if slow else 0.0,
+                    "port": "node-c out (ens1f0)" if slow else None,
+                }
+            )
+    return links
+
+
+def _nodes() -> list[dict[str, Any]]:
+    return [
+        {
+            "name": name,
+            "ranks": list(range(i * RANKS_PER_NODE, (i + 1) * RANKS_PER_NODE)),
+            "cpu_percent": 62.0 + 3 * i,
+            "memory_percent": 41.0 + i,
+            "nic_out_Bps": (1.3e9 if name == "node-c" else 6.1e9) + 1e7 * i,
+            "nic_in_Bps": (1.4e9 if name == "node-d" else 6.0e9) + 1e7 * i,
+            "clock_offset_s": (-1) ** i * 2.0e-5 * (i + 1),
+            "last_heard_s": 0.2 + 0.1 * i,
+            "straggler": name == "node-d",
+        }
+        for i, name in enumerate(NODES)
+    ]
+
+
+HOW = {
+    "comm_fraction": "Share of a layer's time spent blocked in exchanges: E / (C + E), summed over the window, "
+    "on the mean rank and on the worst rank. Source: definition.",
+    "comm_bound": "A layer whose comm fraction exceeds 0.5 (configurable). Source: common practice.",
+    "comm_fraction_worst": "The comm fraction of the worst rank for the layer. Source: definition.",
+    "exchange_s": "Seconds a rank was blocked in communication, not hidden behind compute. Source: measured.",
+    "compute_s": "Seconds of useful compute in the layer over the window. Source: measured.",
+    "load_balance": "LB = mean_r(U_r) / max_r(U_r). Source: POP metrics (Wagner et al., 2017).",
+    "communication": "CommE = max_r(U_r) / T. Source: POP metrics.",
+    "parallel": "PE = LB × CommE. Source: POP metrics.",
+    "serialisation": "SerE = max_r(U_r) / T_ideal. Source: POP metrics.",
+    "transfer": "TE = T_ideal / T. Source: POP metrics.",
+    "speedup": "S = p × PE, against one ideal worker doing all the work. Source: definition, strong scaling.",
+    "lost_to_interconnect": "p × LB × (1 − CommE). Source: split of p − S.",
+    "lost_to_imbalance": "p × (1 − LB). Source: split of p − S.",
+    "bandwidth_Bps": "β of the link model t(n) = α + n/β, least squares per directed node pair. "
+    "Source: Hockney (1994).",
+    "latency_s": "α of the link model t(n) = α + n/β. Source: Hockney (1994).",
+    "utilisation": "Measured throughput over the link's nominal rate. Source: plain ratio.",
+    "score": "Modified z-score of log β against links of the same class; slow below −3.5. "
+    "Source: Iglewicz & Hoaglin (1993).",
+    "slow": "Score below −3.5, or β below a set fraction of nominal. Source: Iglewicz & Hoaglin (1993).",
+    "alerts": "One-sided CUSUM on per-link β and on step time, k = 0.5σ, h = 5σ. Source: Page (1954).",
+    "hours_at_stake": "Remaining steps × (predicted step time now − with the link at the fleet's median β). "
+    "Source: link model.",
+    "straggler": "A rank whose compute is an outlier by modified z-score. Source: Iglewicz & Hoaglin (1993).",
+    "clock_offset_s": "((t1−t0)+(t2−t3))/2 from a two-way timestamp exchange. Source: the usual NTP estimate.",
+}
+
+
+def make_snapshot(step: int = 1210, *, replay: bool = False, **overrides: Any) -> dict[str, Any]:
+    """The scenario at `step`; `overrides` replace top-level keys (after a deep copy)."""
+    snapshot: dict[str, Any] = {
+        "job": "llm-pretrain-7b",
+        "source": {"kind": "replay" if replay else "live", "where": "tcp://10.0.0.1:5555"},
+        "invented": True,
+        "note": "demo scenario: a tired optic on node-c",
+        "ranks": 24,
+        "world": 24,
+        "steps": step + 1,
+        "last_step": step,
+        "steps_per_s": round(2.31 - (step % 100) / 1000, 3),
+        "window": {"first_step": step - 199, "last_step": step, "steps": 200},
+        "layers": _layers(step),
+        "links": _links(),
+        "ports": [
+            {
+                "node": "node-c",
+                "direction": "out",
+                "capacity_Bps": 2.2e9,
+                "slow": True,
+                "score": -5.9,
+                "explains": [list(SLOW)],
+            }
+        ],
+        "nodes": _nodes(),
+        "stragglers": [{"rank": 13, "node": "node-d", "compute_s": 0.41, "score": 4.8}],
+        "efficiency": {
+            "load_balance": 0.92,
+            "communication": 0.77,
+            "parallel": 0.7084,
+            "serialisation": 0.85,
+            "transfer": 0.906,
+        },
+        "speedup": {"workers": 24, "achieved": 17.0, "lost_to_interconnect": 5.08, "lost_to_imbalance": 1.92},
+        "step_time": {
+            "recent_s": 0.433,
+            "trend": [0.40, 0.41, 0.40, 0.42, 0.41, 0.40, 0.43, 0.45, 0.47, 0.46, 0.48, 0.47, 0.44, 0.43],
+        },
+        "alerts": [
+            {
+                "kind": "link_bandwidth",
+                "subject": "node-c→node-d",
+                "step_began": 1180,
+                "step_detected": 1204,
+                "message": "β on node-c→node-d fell from 10.9 GB/s to 2.1 GB/s.",
+            },
+            {
+                "kind": "step_time",
+                "subject": "job",
+                "step_began": 1185,
+                "step_detected": 1209,
+                "message": "Step time rose from 405 ms to 433 ms.",
+            },
+        ],
+        "eta_s": 11_520.0,
+        "hours_at_stake": 1.3,
+        "loss": {
+            "frames": 48_213,
+            "missing": 3,
+            "bad": 2,
+            "bad_reasons": {"size cap": 1, "version": 1},
+            "duplicates": 0,
+            "dropped_at_senders": 5,
+            "senders": 30,
+        },
+        "security": {
+            "mode": "insecure",
+            "warning": "listening on 0.0.0.0:5555 without CURVE keys (--insecure)",
+        },
+        "how": dict(HOW),
+        "replay": (
+            {"step": step, "first_step": 0, "last_step": 2400, "speed": 2.0, "paused": False} if replay else None
+        ),
+    }
+    for key, value in overrides.items():
+        snapshot[key] = copy.deepcopy(value)
+    return snapshot

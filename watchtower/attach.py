@@ -1,0 +1,110 @@
+"""Finding a running ``watchtower collect`` from a console on the same head node.
+
+A collector that records announces itself on a local ipc socket in a run folder private to the user
+(``$WATCHTOWER_RUN_DIR``, else ``/tmp/watchtower-<uid>``). A console asks each socket there who it is and
+gets the recording's path, the endpoint and the security state; it then follows the recording itself, so
+it never slows or stops the collector, and any number of consoles can watch one run.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import zmq
+
+ASK_TIMEOUT_MS = 500
+
+
+def run_dir() -> Path:
+    """The folder where collectors announce themselves (created private to this user)."""
+    folder = Path(os.environ.get("WATCHTOWER_RUN_DIR") or f"/tmp/watchtower-{os.getuid()}")
+    folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+    return folder
+
+
+class Beacon:
+    """The collector's side: answers every query on its ipc socket with a JSON description of the run."""
+
+    def __init__(self, info: dict[str, Any], context: zmq.Context | None = None, folder: Path | None = None) -> None:
+        self.path = (folder or run_dir()) / f"collect-{os.getpid()}.sock"
+        self.info = {**info, "pid": os.getpid(), "started": time.time()}
+        self.socket = (context or zmq.Context.instance()).socket(zmq.ROUTER)
+        self.socket.setsockopt(zmq.LINGER, 0)
+        self.socket.bind(f"ipc://{self.path}")
+
+    def answer(self) -> None:
+        """Reply to every pending query without waiting."""
+        while True:
+            try:
+                identity, *_ = self.socket.recv_multipart(flags=zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            with contextlib.suppress(zmq.Again):
+                self.socket.send_multipart([identity, json.dumps(self.info).encode()], flags=zmq.NOBLOCK)
+
+    def close(self) -> None:
+        self.socket.close()
+        with contextlib.suppress(FileNotFoundError):
+            self.path.unlink()
+
+
+@dataclass(frozen=True)
+class RunningCollector:
+    pid: int
+    recording: Path
+    listen: str
+    security: dict[str, Any]
+    started: float
+
+
+def find_collectors(folder: Path | None = None, context: zmq.Context | None = None) -> list[RunningCollector]:
+    """Every collector that answers in the run folder, newest first; stale sockets are removed."""
+    ctx = context or zmq.Context.instance()
+    found = []
+    for path in sorted((folder or run_dir()).glob("collect-*.sock")):
+        info = _ask(ctx, path)
+        if info is None:
+            if not _alive(path):
+                with contextlib.suppress(FileNotFoundError):
+                    path.unlink()
+            continue
+        try:
+            found.append(RunningCollector(int(info["pid"]), Path(info["recording"]), str(info["listen"]),
+                                          dict(info["security"]), float(info["started"])))
+        except (KeyError, TypeError, ValueError):
+            continue  # not one of ours, or another version: leave it alone
+    return sorted(found, key=lambda c: -c.started)
+
+
+def _ask(ctx: zmq.Context, path: Path) -> dict[str, Any] | None:
+    sock = ctx.socket(zmq.DEALER)
+    sock.setsockopt(zmq.LINGER, 0)
+    try:
+        sock.connect(f"ipc://{path}")
+        sock.send(b"who", flags=zmq.NOBLOCK)
+        if not sock.poll(ASK_TIMEOUT_MS, zmq.POLLIN):
+            return None
+        reply = json.loads(sock.recv())
+        return reply if isinstance(reply, dict) else None
+    except (zmq.ZMQError, json.JSONDecodeError, UnicodeDecodeError):
+        return None
+    finally:
+        sock.close()
+
+
+def _alive(path: Path) -> bool:
+    """Whether the process named in a socket's file name still runs."""
+    try:
+        pid = int(path.stem.removeprefix("collect-"))
+        os.kill(pid, 0)
+    except (ValueError, ProcessLookupError):
+        return False
+    except PermissionError:
+        return True
+    return True

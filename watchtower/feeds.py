@@ -1,0 +1,274 @@
+"""Sources of snapshots for the console: a live collector, a recording replayed, a running ``collect``.
+
+Each feed runs in the console's thread worker: it ingests frames through the same ``Ingest`` path, builds
+a snapshot at most every ``period_s`` and hands it to ``deliver``. ``start`` returns soon after ``stop``.
+Live and replay differ only in where the frames come from.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+from agent import wire
+from watchtower.cluster import Cluster
+from watchtower.collector import Collector
+from watchtower.console.feed import Deliver
+from watchtower.ingest import Ingest
+from watchtower.recording import RecordingError, RecordingReader, Tail, read_meta, resume_records
+from watchtower.snapshot import build_snapshot, cluster_for
+
+SNAPSHOT_PERIOD_S = 0.25
+CONSOLE_WINDOW_STEPS = 120  # the console's figures cover the recent steps, so a change shows soon
+
+
+class _Snapshots:
+    """Builds snapshots from an ingest no more often than ``period_s`` (and always when forced)."""
+
+    def __init__(self, ingest: Ingest, cluster: Cluster | None, meta: dict, source: dict[str, str],
+                 security: dict[str, Any] | None, window_steps: int | None, period_s: float,
+                 clock: Callable[[], float]) -> None:
+        self.ingest, self.meta, self.source, self.security = ingest, meta, source, security
+        self.cluster = cluster_for(meta, cluster)
+        self.window_steps, self.period_s, self.clock = window_steps, period_s, clock
+        self._last = -float("inf")
+
+    def due(self) -> bool:
+        return self.clock() - self._last >= self.period_s
+
+    def build(self, replay: dict[str, Any] | None = None) -> dict[str, Any]:
+        self._last = self.clock()
+        return build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
+                              security=self.security, window_steps=self.window_steps, replay=replay)
+
+
+class LiveFeed:
+    """Collector and console in one process (``watchtower watch --listen``)."""
+
+    controls = None
+
+    def __init__(self, collector: Collector, *, cluster: Cluster | None = None, security: dict[str, Any] | None,
+                 window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.collector = collector
+        self._stop = threading.Event()
+        self._snapshots = _Snapshots(collector.ingest, cluster, {}, {"kind": "live", "where": collector.bound},
+                                     security, window_steps, period_s, clock)
+
+    def start(self, deliver: Deliver) -> None:
+        deliver(self._snapshots.build())
+        try:
+            while not self._stop.is_set():
+                self.collector.drain(50)
+                if self._snapshots.due():
+                    deliver(self._snapshots.build())
+        finally:
+            self.collector.close()
+
+    def stop(self) -> None:
+        self._stop.set()
+
+
+class AttachFeed:
+    """Follows the recording of a ``watchtower collect`` that keeps running after the console closes.
+
+    It reads the whole history first, then picks up each record as the collector appends it. It only
+    reads: closing the console never stops collection, and any number of consoles can follow one run.
+    """
+
+    controls = None
+
+    def __init__(self, recording: Path, *, security: dict[str, Any] | None, cluster: Cluster | None = None,
+                 window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
+                 poll_s: float = 0.1, clock: Callable[[], float] = time.monotonic) -> None:
+        self.recording = recording
+        self.poll_s = poll_s
+        self._stop = threading.Event()
+        with open(recording, "rb") as stream:
+            meta = read_meta(stream)
+            self._offset = stream.tell()
+        self.ingest = Ingest()
+        self._snapshots = _Snapshots(self.ingest, cluster, meta, {"kind": "attached", "where": str(recording)},
+                                     security, window_steps, period_s, clock)
+
+    def start(self, deliver: Deliver) -> None:
+        while not self._stop.is_set():
+            self.catch_up()
+            deliver(self._snapshots.build())
+            self._stop.wait(max(self.poll_s, self._snapshots.period_s))
+
+    def catch_up(self) -> int:
+        """Ingest every complete record appended since the last call; returns how many."""
+        tail = Tail(consumed=self._offset)
+        count = 0
+        for received_ns, frames in resume_records(self.recording, tail):
+            self.ingest.feed(received_ns, frames)
+            count += 1
+        self._offset = tail.consumed  # a half-written last record is read again next time, whole
+        return count
+
+    def stop(self) -> None:
+        self._stop.set()
+
+
+class ReplayFeed:
+    """A recording through the console at ``speed`` times its recorded pace, steerable by its controls.
+
+    Seeking forward fast-forwards; seeking backward starts again from the top (the store is built up in
+    order), so memory stays bounded by the store, never by the file.
+    """
+
+    def __init__(self, path: Path, *, cluster: Cluster | None = None, speed: float = 1.0, from_step: int = 0,
+                 window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        self.path, self.cluster, self.window_steps = path, cluster, window_steps
+        self.period_s, self.clock = period_s, clock
+        self.controls = self
+        self.first_step, self.last_step, self.meta = _scan(path)
+        self._cond = threading.Condition()
+        self._stopped = False
+        self._paused = False
+        self._speed = speed
+        self._target: int | None = max(from_step, self.first_step) if from_step > self.first_step else None
+        self._rewind = False
+        self.tail: Tail | None = None
+        self._open()
+
+    # ------------------------------------------------------------------ controls (called from the UI)
+    def pause(self) -> None:
+        with self._cond:
+            self._paused = True
+            self._cond.notify_all()
+
+    def resume(self) -> None:
+        with self._cond:
+            self._paused = False
+            self._anchor = None
+            self._cond.notify_all()
+
+    def step(self, n: int = 1) -> None:
+        with self._cond:
+            self._paused = True
+            self._target = self.position + n
+            self._cond.notify_all()
+
+    def seek(self, step: int) -> None:
+        with self._cond:
+            step = min(max(step, self.first_step), self.last_step)
+            self._rewind = step < self.position
+            self._target = step
+            self._cond.notify_all()
+
+    def set_speed(self, x: float) -> None:
+        with self._cond:
+            self._speed = x
+            self._anchor = None
+            self._cond.notify_all()
+
+    def stop(self) -> None:
+        with self._cond:
+            self._stopped = True
+            self._cond.notify_all()
+
+    # ------------------------------------------------------------------ the feed's thread
+    @property
+    def position(self) -> int:
+        return self.ingest.store.newest_complete_step()
+
+    def _open(self) -> None:
+        self._reader = RecordingReader(self.path)
+        self._records: Iterator[tuple[int, list[bytes]]] = iter(self._reader)
+        self.ingest = Ingest()
+        self._snapshots = _Snapshots(self.ingest, self.cluster, self.meta, {"kind": "replay", "where": str(self.path)},
+                                     None, self.window_steps, self.period_s, self.clock)
+        self._anchor: tuple[float, int] | None = None
+        self._pending: tuple[int, list[bytes]] | None = None
+        self._finished = False
+
+    def _state(self) -> dict[str, Any]:
+        return {"step": self.position, "first_step": self.first_step, "last_step": self.last_step,
+                "speed": self._speed, "paused": self._paused or self._finished}
+
+    def start(self, deliver: Deliver) -> None:
+        try:
+            while True:
+                with self._cond:
+                    if self._stopped:
+                        return
+                    if self._rewind:
+                        self._reader.close()
+                        self._open()
+                        self._rewind = False
+                    target = self._target
+                    idle = self._finished or (self._paused and target is None)
+                    if idle:
+                        self._cond.wait(0.25)
+                        continue
+                if target is not None:
+                    self._fast_forward(target)
+                    with self._cond:
+                        if self._target == target:
+                            self._target = None
+                    deliver(self._snapshots.build(self._state()))
+                    continue
+                if self._play_one() and self._snapshots.due():
+                    deliver(self._snapshots.build(self._state()))
+                if self._finished:
+                    self.tail = self._reader.tail
+                    deliver(self._snapshots.build(self._state()))
+        finally:
+            self._reader.close()
+
+    def _fast_forward(self, target: int) -> None:
+        while self.position < target and not self._finished and not self._stopped:
+            self._next_record()
+        self._anchor = None
+
+    def _play_one(self) -> bool:
+        """Ingest the next record when its time has come at the current speed; False while waiting."""
+        record = self._peek()
+        if record is None:
+            return False
+        received_ns = record[0]
+        now = self.clock()
+        if self._anchor is None:
+            self._anchor = (now, received_ns)
+        due = self._anchor[0] + (received_ns - self._anchor[1]) * 1e-9 / self._speed
+        if due > now:
+            with self._cond:
+                self._cond.wait(min(due - now, self.period_s))
+            return False
+        self._next_record()
+        return True
+
+    def _peek(self) -> tuple[int, list[bytes]] | None:
+        if self._pending is None and not self._finished:
+            self._pending = next(self._records, None)
+            if self._pending is None:
+                self._finished = True
+        return self._pending
+
+    def _next_record(self) -> None:
+        record = self._peek()
+        if record is not None:
+            self._pending = None
+            self.ingest.feed(*record)
+
+
+def _scan(path: Path) -> tuple[int, int, dict]:
+    """First and last step in a recording, from the step frames' fixed parts alone (no full decode)."""
+    first, last = None, -1
+    with RecordingReader(path) as reader:
+        for _, frames in reader:
+            if len(frames) == 4 and wire.peek_kind(frames[0]) == wire.Kind.STEP and \
+                    len(frames[1]) == wire.STEP_META.size:
+                step = wire.STEP_META.unpack(frames[1])[0]
+                first = step if first is None else min(first, step)
+                last = max(last, step)
+        meta = reader.meta
+    if first is None:
+        raise RecordingError(f"{path} holds no steps to replay")
+    return first, last, meta
