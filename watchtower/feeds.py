@@ -132,7 +132,7 @@ class ReplayFeed:
         self._stopped = False
         self._paused = False
         self._speed = speed
-        self._target: int | None = max(from_step, self.first_step) if from_step > self.first_step else None
+        self._target: int | None = min(max(from_step, self.first_step), self.last_step)  # first thing shown
         self._rewind = False
         self.tail: Tail | None = None
         self._open()
