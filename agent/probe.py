@@ -141,7 +141,8 @@ class Probe:
         self._exchange: list[int] = []
         self._in_flight: list[int] = []  # per layer: exchanges started and not yet stopped
         self._busy_since: list[int] = []  # per layer: when the current run of in-flight exchanges began
-        self._regions: dict[str, tuple[_Region, _Region]] = {}
+        self._compute_regions: dict[str, _Region] = {}
+        self._blocked_regions: dict[str, _Region] = {}
         self._records: list[tuple[int, int, int, int, int, int, int, int]] = []
         self._open: dict[str, int] = {}
         self._step_start = clock()
@@ -171,8 +172,8 @@ class Probe:
             self._exchange.append(0)
             self._in_flight.append(0)
             self._busy_since.append(0)
-            self._regions[name] = (_Region(self.clock, self._compute, index),
-                                   _Region(self.clock, self._exchange, index))
+            self._compute_regions[name] = _Region(self.clock, self._compute, index)
+            self._blocked_regions[name] = _Region(self.clock, self._exchange, index)
             self._schema_id += 1
             self._schema_dirty = True
         return index
@@ -184,19 +185,19 @@ class Probe:
     # ------------------------------------------------------------------------------------ timing
     def compute(self, layer: str) -> _Region:
         """``with probe.compute("attn.3"):`` times useful work of that layer."""
-        regions = self._regions.get(layer)
-        if regions is None:
+        try:
+            return self._compute_regions[layer]  # the hot path: one dict lookup
+        except KeyError:
             self.layer(layer)
-            regions = self._regions[layer]
-        return regions[0]
+            return self._compute_regions[layer]
 
     def blocked(self, layer: str) -> _Region:
         """Times exchange (blocked-in-communication) time of a layer without a per-transfer record."""
-        regions = self._regions.get(layer)
-        if regions is None:
+        try:
+            return self._blocked_regions[layer]
+        except KeyError:
             self.layer(layer)
-            regions = self._regions[layer]
-        return regions[1]
+            return self._blocked_regions[layer]
 
     def start_compute(self, layer: str) -> None:
         """Explicit form of ``compute`` for code that cannot use ``with``."""
