@@ -70,6 +70,7 @@ class Store:
         self._sender_rank: dict[int, int] = {}
         self._sender_node: dict[int, int] = {}
         self._pending_offset: dict[int, tuple[int, int]] = {}
+        self._rank_node = np.zeros(0, dtype=np.int64)  # rank -> node index, -1 when unknown
         self.world = 0
         self.job = ""
         self._slabs: OrderedDict[int, _StepSlab] = OrderedDict()
@@ -116,6 +117,9 @@ class Store:
             info.node, info.layer_map = node, layer_map
             info.schema_id, info.sender = message.schema_id, message.header.sender
         self._sender_rank[message.header.sender] = message.rank
+        if message.rank >= len(self._rank_node):
+            self._rank_node = _grown(self._rank_node, (message.rank + 1,), -1)
+        self._rank_node[message.rank] = node
         self.world = max(self.world, message.world)
         if message.header.sender in self._pending_offset:
             info.offset_ns, info.round_trip_ns = self._pending_offset.pop(message.header.sender)
@@ -178,6 +182,8 @@ class Store:
         self.last_step = max(self.last_step, message.step)
         step_s = self._series_step.get(message.step, 0.0)
         self._series_step[message.step] = max(step_s, message.duration_ns * NS)
+        if len(self._series_step) > SERIES_CAP:
+            self._merge_old_series()
         return True
 
     def _add_exchanges(self, slab: _StepSlab, info: RankInfo, message: wire.Step) -> None:
@@ -190,32 +196,30 @@ class Store:
         base_ns = message.header.wall_ns + self.offset_ns(info) - self.epoch_ns
         recv = table[:, ops == wire.Op.RECV]
         if recv.shape[1]:
-            peers = recv[wire.X_PEER]
-            wait = recv[wire.X_WAIT].astype(np.float64) * NS
-            wait[recv[wire.X_WAIT] == wire.UNKNOWN_WAIT] = np.nan
-            rows = np.vstack([
-                np.full(peers.shape, message.step, dtype=np.float64),
-                info.layer_map[recv[wire.X_LAYER]].astype(np.float64),
-                peers.astype(np.float64),
-                np.full(peers.shape, info.rank, dtype=np.float64),
-                recv[wire.X_NBYTES].astype(np.float64),
-                (base_ns + recv[wire.X_START]) * NS,
-                (base_ns + recv[wire.X_END]) * NS,
-                wait,
-            ])
+            rows = np.empty((8, recv.shape[1]))
+            rows[0] = message.step
+            rows[1] = info.layer_map[recv[wire.X_LAYER]]
+            rows[2] = recv[wire.X_PEER]
+            rows[3] = info.rank
+            rows[4] = recv[wire.X_NBYTES]
+            rows[5] = (base_ns + recv[wire.X_START]) * NS
+            rows[6] = (base_ns + recv[wire.X_END]) * NS
+            known = recv[wire.X_WAIT] != wire.UNKNOWN_WAIT
+            rows[7] = np.where(known, recv[wire.X_WAIT] * NS, np.nan)
             slab.transfers.append(rows)
-            self._add_link_series(message.step, info, peers, rows)
-        coll = table[:, np.isin(ops, _COLLECTIVE_VALUES)]
+            self._add_link_series(message.step, info, recv[wire.X_PEER], rows[4],
+                                  rows[6] - rows[5] - np.where(known, rows[7], 0.0))
+        coll = table[:, _IS_COLLECTIVE[ops]]
         if coll.shape[1]:
-            slab.collectives.append(np.vstack([
-                np.full(coll.shape[1], message.step, dtype=np.float64),
-                info.layer_map[coll[wire.X_LAYER]].astype(np.float64),
-                np.full(coll.shape[1], info.rank, dtype=np.float64),
-                coll[wire.X_OP].astype(np.float64),
-                coll[wire.X_GROUP].astype(np.float64),
-                coll[wire.X_NBYTES].astype(np.float64),
-                (coll[wire.X_END] - coll[wire.X_START]) * NS,
-            ]))
+            rows = np.empty((7, coll.shape[1]))
+            rows[0] = message.step
+            rows[1] = info.layer_map[coll[wire.X_LAYER]]
+            rows[2] = info.rank
+            rows[3] = coll[wire.X_OP]
+            rows[4] = coll[wire.X_GROUP]
+            rows[5] = coll[wire.X_NBYTES]
+            rows[6] = (coll[wire.X_END] - coll[wire.X_START]) * NS
+            slab.collectives.append(rows)
 
     def offset_ns(self, info: RankInfo) -> int:
         """Collector clock minus the rank's clock: its own handshake if it made one, else its node daemon's."""
@@ -223,20 +227,25 @@ class Store:
             return info.offset_ns
         return self.nodes[info.node].offset_ns or 0
 
-    def _add_link_series(self, step: int, info: RankInfo, peers: np.ndarray, rows: np.ndarray) -> None:
+    def _add_link_series(self, step: int, info: RankInfo, peers: np.ndarray, nbytes: np.ndarray,
+                         seconds: np.ndarray) -> None:
+        """Add one rank's received transfers to the per-step totals of each (source node, this node) pair."""
+        known = peers < len(self._rank_node)
+        src = np.full(peers.shape, -1)
+        src[known] = self._rank_node[peers[known]]
+        keep = (src >= 0) & (src != info.node)
+        if not keep.any():
+            return
         per_pair = self._series_links.setdefault(step, {})
-        transfer = rows[6] - rows[5] - np.nan_to_num(rows[7])
-        for peer, nbytes, seconds in zip(peers.tolist(), rows[4].tolist(), transfer.tolist(), strict=True):
-            peer_info = self.ranks.get(peer)
-            if peer_info is None or peer_info.node == info.node:
-                continue
-            pair = (peer_info.node, info.node)
+        sources, where = np.unique(src[keep], return_inverse=True)
+        sums_bytes = np.bincount(where, nbytes[keep])
+        sums_seconds = np.bincount(where, seconds[keep])
+        for source, b, t in zip(sources.tolist(), sums_bytes.tolist(), sums_seconds.tolist(), strict=True):
+            pair = (source, info.node)
             self._pairs.setdefault(pair, len(self._pairs))
             cell = per_pair.setdefault(pair, [0.0, 0.0])
-            cell[0] += nbytes
-            cell[1] += seconds
-        if len(self._series_step) > SERIES_CAP:
-            self._merge_old_series()
+            cell[0] += b
+            cell[1] += t
 
     def _merge_old_series(self) -> None:
         """Keep memory flat on long runs: fold the oldest half of the series two steps into one."""
@@ -338,7 +347,8 @@ class Store:
         return self.total_compute_ns[rows], self.total_exchange_ns[rows]
 
 
-_COLLECTIVE_VALUES = np.array(sorted(int(op) for op in wire.COLLECTIVE_OPS), dtype=np.int64)
+_IS_COLLECTIVE = np.zeros(256, dtype=bool)  # indexed by op value (the decoder admits only known ops)
+_IS_COLLECTIVE[[int(op) for op in wire.COLLECTIVE_OPS]] = True
 
 
 def _grown(array: np.ndarray, shape: tuple[int, ...], fill: float) -> np.ndarray:
