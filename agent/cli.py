@@ -19,6 +19,7 @@ from collections.abc import Callable, Sequence
 from typing import NoReturn
 
 from agent.daemon import DaemonError, default_local_endpoint, run_daemon
+from agent.keys import KeyFileError, curve_keys
 from agent.workload import ConnectError, WorkloadConfig, WorkloadError, run_workload
 
 PROG = "watchtower-agent"
@@ -106,6 +107,13 @@ def _positive(kind: type[int] | type[float], allow_zero: bool = False) -> Callab
     return parse
 
 
+def _key_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--keys", metavar="AGENT_SECRET_FILE",
+                        help="this agent's secret key file (watchtower keys agent): encrypt and authenticate")
+    parser.add_argument("--server-key", metavar="HEAD_PUBLIC_FILE",
+                        help="the collector's public key file (head.key); goes with --keys")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog=PROG, description="Node side of Watchtower.")
     commands = parser.add_subparsers(dest="command", required=True, metavar="{run,workload}")
@@ -116,6 +124,7 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--local", type=endpoint, default=None,
                      help=f"endpoint local probes publish to (default: {default_local_endpoint()})")
     run.add_argument("--interval", type=_positive(float), default=1.0, help="seconds between node samples")
+    _key_options(run)
 
     job = commands.add_parser("workload", help="run one rank of a ring halo-exchange job to watch")
     job.add_argument("--rank", required=True, type=_positive(int, allow_zero=True))
@@ -133,16 +142,31 @@ def build_parser() -> argparse.ArgumentParser:
     job.add_argument("--seed", type=int, default=0)
     job.add_argument("--connect-timeout", type=_positive(float), default=30.0,
                      help="seconds to wait for neighbours to come up")
+    job.add_argument("--spool", metavar="FILE",
+                     help="also append every monitoring frame to this local recording (see watchtower merge)")
+    _key_options(job)
     return parser
 
 
 # ---------------------------------------------------------------------------------------- commands
 
+def _keys(args: argparse.Namespace) -> tuple[bytes, bytes, bytes] | None:
+    if args.keys is None and args.server_key is None:
+        return None
+    if args.keys is None or args.server_key is None:
+        raise UsageError("--keys and --server-key go together")
+    try:
+        return curve_keys(args.keys, args.server_key)
+    except KeyFileError as exc:
+        raise UsageError(str(exc)) from None
+
+
 def _run(args: argparse.Namespace) -> int:
+    keys = _keys(args)
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
-    run_daemon(args.collector, args.node, args.local, args.interval, stop)
+    run_daemon(args.collector, args.node, args.local, args.interval, stop, curve_keys=keys)
     return 0
 
 
@@ -153,7 +177,8 @@ def _workload(args: argparse.Namespace) -> int:
         raise UsageError("--layers is capped at 4096 (the wire format's limit)")
     config = WorkloadConfig(rank=args.rank, peers=args.peers, collector=args.collector, node=args.node,
                             steps=args.steps, layers=args.layers, exchange_bytes=args.exchange_bytes,
-                            compute_ms=args.compute_ms, seed=args.seed, connect_timeout_s=args.connect_timeout)
+                            compute_ms=args.compute_ms, seed=args.seed, connect_timeout_s=args.connect_timeout,
+                            curve_keys=_keys(args), spool=args.spool)
     result = run_workload(config)
     print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
     return 0

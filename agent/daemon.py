@@ -47,7 +47,7 @@ class NodeDaemon:
 
     def __init__(self, collector_endpoint: str, node: str, local_endpoint: str | None = None, *,
                  interval_s: float = 1.0, sampler: NodeSampler | None = None,
-                 context: zmq.Context | None = None) -> None:
+                 context: zmq.Context | None = None, curve_keys: tuple[bytes, bytes, bytes] | None = None) -> None:
         if interval_s <= 0:
             raise ValueError("the sampling interval must be positive")
         self.node = node
@@ -76,6 +76,9 @@ class NodeDaemon:
             self._frontend.bind(inproc)
             self._backend = self._socket(zmq.DEALER, linger=LINGER_MS)
             self._backend.setsockopt(zmq.SNDHWM, UPLINK_HWM)
+            if curve_keys is not None:  # (own public, own secret, collector public): the uplink leaves the node
+                b = self._backend
+                b.curve_publickey, b.curve_secretkey, b.curve_serverkey = curve_keys
             self._backend.connect(collector_endpoint)
             self._control = self._socket(zmq.PAIR, linger=0)
             self._control.bind(f"{inproc}-control")
@@ -212,9 +215,10 @@ def _listening(path: Path) -> bool:
 
 
 def run_daemon(collector_endpoint: str, node: str, local_endpoint: str | None = None, interval_s: float = 1.0,
-               stop_event: threading.Event | None = None) -> None:
+               stop_event: threading.Event | None = None,
+               curve_keys: tuple[bytes, bytes, bytes] | None = None) -> None:
     """Run a node daemon until ``stop_event`` is set (forever without one)."""
-    daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s)
+    daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s, curve_keys=curve_keys)
     try:
         daemon.serve(stop_event or threading.Event())
     finally:

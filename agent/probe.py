@@ -6,12 +6,18 @@ when the peer was ready, the part of it spent waiting. At ``end_step`` the step 
 arrays and handed to ZeroMQ with NOBLOCK: if the socket's bounded queue is full (head node down or slow)
 the frame is dropped and counted, and the next frame carries the running count. Training never blocks on
 monitoring.
+
+With ``spool=PATH`` the probe also appends every frame it numbers, sent or dropped, to a local recording
+(``agent/records.py``; one unbuffered write per frame). Spooling only the drops would miss frames that
+ZeroMQ accepted but that died with a killed collector or node daemon; spooling all makes
+``watchtower merge`` of the head's recording and the spools complete, at the price of one write per frame.
 """
 
 from __future__ import annotations
 
 import secrets
 import time
+from pathlib import Path
 from types import TracebackType
 
 import numpy as np
@@ -19,6 +25,7 @@ import zmq
 
 from agent import wire
 from agent.clock import Clock, default_clock
+from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
 CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
@@ -76,8 +83,7 @@ class Exchange:
 
     def peer_ready_at_wall(self, ready_wall_ns: int) -> None:
         """As ``peer_ready_at`` for a wall-clock (``time.time_ns``) stamp, e.g. one sent by the peer."""
-        probe = self._probe
-        self.peer_ready_at(probe._step_start + (ready_wall_ns - probe._step_wall))
+        self.peer_ready_at(self._probe.from_wall(ready_wall_ns))
 
     def stop(self, nbytes: int | None = None) -> None:
         if self.stopped:
@@ -104,6 +110,9 @@ class Probe:
 
     ``endpoint`` is where to publish (``tcp://head:5555`` or the node daemon's ``ipc://`` endpoint);
     ``None`` keeps frames in memory only (``sent_frames``), for tests and offline generation.
+    ``curve_keys`` is (own public, own secret, server public), Z85 or raw, when the collector uses keys.
+    ``spool`` is a local recording every frame is also appended to (see the module docstring); if writing
+    it fails (disk full), spooling stops and ``spool_error`` says why: training goes on.
     A probe belongs to one thread: time overlapping transfers from that thread (e.g. with a selector).
     """
 
@@ -121,6 +130,7 @@ class Probe:
         queue_frames: int = 64,
         context: zmq.Context | None = None,
         curve_keys: tuple[bytes, bytes, bytes] | None = None,
+        spool: str | Path | None = None,
     ) -> None:
         if not 0 <= rank < world:
             raise ValueError(f"rank {rank} is outside a world of {world}")
@@ -150,15 +160,25 @@ class Probe:
         self._next_ping = 0.0
         for name in layers:
             self.layer(name)
+        self.spool_error: str | None = None
+        self._spool: RecordWriter | None = None
+        if spool is not None:  # first: if it cannot be opened, no socket is left behind
+            self._spool = RecordWriter(spool, {"tool": "watchtower-agent spool", "sender": self.sender,
+                                               "rank": rank, "world": world, "node": node, "job": job})
         self._socket: zmq.Socket | None = None
         if endpoint is not None:
             ctx = context or zmq.Context.instance()
             sock = ctx.socket(zmq.DEALER)
-            sock.setsockopt(zmq.SNDHWM, queue_frames)
-            sock.setsockopt(zmq.LINGER, 1000)
-            if curve_keys is not None:
-                sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
-            sock.connect(endpoint)
+            try:
+                sock.setsockopt(zmq.SNDHWM, queue_frames)
+                sock.setsockopt(zmq.LINGER, 1000)
+                if curve_keys is not None:
+                    sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
+                sock.connect(endpoint)
+            except zmq.ZMQError:  # a bad key or endpoint: leave nothing open that would hang the context
+                sock.close()
+                self._close_spool()
+                raise
             self._socket = sock
 
     # ------------------------------------------------------------------------------------ layers
@@ -226,6 +246,33 @@ class Probe:
             self._busy_since[layer] = start
         self._in_flight[layer] += 1
 
+    def from_wall(self, wall_ns: int) -> int:
+        """A wall-clock (``time.time_ns``, CLOCK_REALTIME) reading on the probe's clock, via this step's
+        anchor: for stamps taken by a peer or by the kernel."""
+        return self._step_start + (wall_ns - self._step_wall)
+
+    def record_transfer(self, layer: str, *, op: wire.Op, nbytes: int, start_ns: int, end_ns: int,
+                        peer: int = wire.NO_PEER, group: int = 0, peer_ready_ns: int | None = None,
+                        exposed_ns: int = 0) -> None:
+        """Record an exchange whose times were taken elsewhere (a progress thread, a collective's callback).
+
+        ``start_ns``/``end_ns`` are on the probe's clock and describe the transfer itself, for the link
+        models; ``exposed_ns`` is the part of it the training loop actually waited for, added to the layer's
+        exchange time (a transfer hidden behind compute costs nothing). The layer's blocked time may also be
+        timed separately with ``blocked(layer)``."""
+        if end_ns < start_ns or exposed_ns < 0:
+            raise ValueError("a transfer ends after it starts and exposes no negative time")
+        if op in wire.COLLECTIVE_OPS:
+            if peer != wire.NO_PEER:
+                raise ValueError("a collective has no single peer")
+        elif not 0 <= peer < self.world:
+            raise ValueError(f"peer {peer} is outside a world of {self.world}")
+        index = self.layer(layer)
+        self._exchange[index] += exposed_ns
+        wait = wire.UNKNOWN_WAIT if peer_ready_ns is None else min(peer_ready_ns - start_ns, end_ns - start_ns)
+        self._records.append((index, int(op), peer, group, nbytes, start_ns - self._step_start,
+                              end_ns - self._step_start, wait))
+
     def _finish_exchange(self, ex: Exchange) -> None:
         # Overlapping exchanges are blocked time once, not once each: add the union of their intervals.
         self._in_flight[ex.layer] -= 1
@@ -272,6 +319,8 @@ class Probe:
     def _send(self, frames: list[bytes]) -> bool:
         """Hand frames to ZeroMQ without blocking; a full queue drops the frame and counts it."""
         self.seq += 1
+        if self._spool is not None:
+            self._spool_frame(frames)
         if self._socket is None:
             self.sent_frames.append(frames)
             return True
@@ -282,6 +331,18 @@ class Probe:
             self._schema_dirty = True  # the collector may not know us yet when it comes back
             return False
         return True
+
+    def _spool_frame(self, frames: list[bytes]) -> None:
+        try:
+            self._spool.write(time.time_ns(), frames)  # type: ignore[union-attr]
+        except OSError as exc:
+            self.spool_error = f"spool stopped: {exc.strerror}"
+            self._close_spool()
+
+    def _close_spool(self) -> None:
+        if self._spool is not None:
+            self._spool.close()  # unbuffered: nothing is left to flush, so closing cannot fail on a full disk
+            self._spool = None
 
     # ------------------------------------------------------------------------------------ clock
     def _poll_clock(self) -> None:
@@ -310,6 +371,7 @@ class Probe:
         if self._socket is not None:
             self._socket.close()
             self._socket = None
+        self._close_spool()
 
     def __enter__(self) -> Probe:
         return self

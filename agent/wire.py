@@ -364,11 +364,16 @@ def _decode_step(header: Header, meta: tuple, layers: bytes, table: bytes) -> St
         ops = exchanges[X_OP]
         if ops.min() < 0 or ops.max() >= len(_KNOWN_OP) or not _KNOWN_OP[ops].all():
             raise WireError("bad-exchange", "unknown operation")
+        peers = exchanges[X_PEER][~_IS_COLLECTIVE[ops]]
+        if peers.size and (peers.min() < 0 or peers.max() >= MAX_WORLD):  # a rank indexes arrays downstream
+            raise WireError("bad-exchange", "point-to-point peer is not a rank")
     return Step(header, step, duration_ns, dropped_total, schema_id, layer_ns, exchanges)
 
 
 _KNOWN_OP = np.zeros(256, dtype=bool)  # indexed by op value: a table lookup is far cheaper than np.isin
 _KNOWN_OP[[int(op) for op in Op]] = True
+_IS_COLLECTIVE = np.zeros(256, dtype=bool)
+_IS_COLLECTIVE[[int(op) for op in COLLECTIVE_OPS]] = True
 
 
 def _decode_node(header: Header, meta: tuple, names_blob: bytes, values: bytes) -> NodeSample:

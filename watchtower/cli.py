@@ -7,6 +7,7 @@ input errors), never a traceback.
 from __future__ import annotations
 
 import argparse
+import os
 import signal
 import sys
 import threading
@@ -19,9 +20,12 @@ from watchtower.collector import Collector, Endpoint, EndpointError, parse_endpo
 from watchtower.console.feed import Feed
 from watchtower.errors import UsageError, WatchtowerError
 from watchtower.ingest import Ingest
-from watchtower.recording import Recorder, RecordingError
+from watchtower.keys import HeadKeys, load_head
+from watchtower.recording import NotARecording, Recorder, RecordingError
 
 PROG = "watchtower"
+KEYS_ENV = "WATCHTOWER_KEYS"  # the key folder when --dir is not given
+DEFAULT_KEYS = Path("watchtower-keys")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -55,6 +59,8 @@ def build_parser() -> argparse.ArgumentParser:
     collect.add_argument("--duration", type=_positive(float), help="stop after this many seconds")
     collect.add_argument("--insecure", action="store_true",
                          help="allow listening beyond loopback without keys (shown as a standing warning)")
+    collect.add_argument("--keys", type=Path, metavar="DIR",
+                         help="key folder (watchtower keys init): encrypt, and accept only listed agents")
     collect.set_defaults(run=_collect)
 
     watch = commands.add_parser("watch", help="the console: attach to a running collect, or collect in-process")
@@ -63,6 +69,8 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--follow", type=Path, help="follow this recording as a collector appends to it")
     watch.add_argument("--insecure", action="store_true",
                        help="with --listen: allow listening beyond loopback without keys")
+    watch.add_argument("--keys", type=Path, metavar="DIR",
+                       help="with --listen: key folder; encrypt, and accept only listed agents")
     _console_options(watch)
     watch.set_defaults(run=_watch)
 
@@ -87,6 +95,22 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("--cluster", type=Path, help="cluster description (TOML): nominal rates, total steps")
     report.add_argument("--window", type=_positive(int), help="analyse only the last N steps")
     report.set_defaults(run=_report)
+
+    keys = commands.add_parser("keys", help="CURVE keys: the head's pair, and one pair per agent")
+    what = keys.add_subparsers(dest="keys_command", required=True, parser_class=_Parser, metavar="{init,agent}")
+    init = what.add_parser("init", help="make the head's key pair and an empty allow-list in DIR")
+    init.add_argument("dir", type=Path, metavar="DIR")
+    init.set_defaults(run=_keys_init)
+    agent = what.add_parser("agent", help="make an agent's key pair and add its public key to the allow-list")
+    agent.add_argument("name", metavar="NAME", help="a name for the agent, e.g. its node")
+    agent.add_argument("--dir", type=Path, default=None,
+                       help=f"key folder (default: ${KEYS_ENV}, else {DEFAULT_KEYS})")
+    agent.set_defaults(run=_keys_agent)
+
+    merge = commands.add_parser("merge", help="join agents' spools and the head's recording into one trace")
+    merge.add_argument("out", type=Path, metavar="OUT", help="the merged recording to write (must not exist)")
+    merge.add_argument("inputs", type=Path, nargs="+", metavar="IN", help="recordings and spools")
+    merge.set_defaults(run=_merge)
     return parser
 
 
@@ -105,23 +129,29 @@ def _cluster(path: Path | None) -> Cluster | None:
         raise UsageError(str(exc)) from None
 
 
-def _security(endpoint: Endpoint, insecure: bool, listen: str) -> dict[str, str | None]:
-    """The transport's state as the console shows it; refuses an open listener without --insecure."""
+def _security(endpoint: Endpoint, insecure: bool, listen: str, keys: bool = False) -> dict[str, str | None]:
+    """The transport's state as the console shows it; refuses an open listener without keys or --insecure."""
+    if keys and insecure:
+        raise UsageError("give --keys or --insecure, not both")
+    if keys:
+        return {"mode": "keys", "warning": None}
     if endpoint.loopback:
         return {"mode": "loopback", "warning": None}
     if not insecure:
-        raise UsageError(f"{listen} is reachable from the network: give --insecure to accept unauthenticated "
-                         "agents there")
+        raise UsageError(f"{listen} is reachable from the network: give --keys DIR to accept only listed agents, "
+                         "or --insecure to accept anyone there")
     return {"mode": "insecure",
             "warning": f"listening on {listen} without keys: anyone who can reach it can send figures"}
 
 
-def _listen(listen: str, insecure: bool) -> tuple[Endpoint, dict[str, str | None]]:
+def _listen(listen: str, insecure: bool, keys: Path | None = None) -> tuple[dict[str, str | None], HeadKeys | None]:
+    """Check where and how to listen: the console's security state, and the head's keys if given."""
     try:
         endpoint = parse_endpoint(listen, binding=True)
     except EndpointError as exc:
         raise UsageError(str(exc)) from None
-    return endpoint, _security(endpoint, insecure, listen)
+    security = _security(endpoint, insecure, listen, keys is not None)
+    return security, None if keys is None else load_head(keys)
 
 
 def _recorder(path: Path, meta: dict) -> Recorder:
@@ -129,11 +159,13 @@ def _recorder(path: Path, meta: dict) -> Recorder:
         return Recorder(path, meta)
     except OSError as exc:
         raise UsageError(f"cannot write {path}: {exc.strerror}") from None
+    except NotARecording as exc:
+        raise UsageError(str(exc)) from None
 
 
-def _collector(listen: str, ingest: Ingest, recorder: Recorder | None) -> Collector:
+def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: HeadKeys | None) -> Collector:
     try:
-        return Collector(listen, ingest, recorder)
+        return Collector(listen, ingest, recorder, keys=keys)
     except EndpointError as exc:
         if recorder is not None:
             recorder.close()
@@ -153,14 +185,14 @@ def _watch(args: argparse.Namespace) -> int:
 
     cluster = _cluster(args.cluster)
     if args.listen:
-        _, security = _listen(args.listen, args.insecure)
+        security, keys = _listen(args.listen, args.insecure, args.keys)
         recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
                                                                              "listen": args.listen})
-        feed: Feed = LiveFeed(_collector(args.listen, Ingest(), recorder), cluster=cluster, security=security,
-                              window_steps=args.window)
+        feed: Feed = LiveFeed(_collector(args.listen, Ingest(), recorder, keys), cluster=cluster,
+                              security=security, window_steps=args.window)
         return _run_console(feed)
-    if args.record or args.insecure:
-        raise UsageError("--record and --insecure go with --listen")
+    if args.record or args.insecure or args.keys:
+        raise UsageError("--record, --insecure and --keys go with --listen")
     if args.follow is not None:
         recording, security = args.follow, None
     else:
@@ -197,10 +229,10 @@ def _demo(args: argparse.Namespace) -> int:
 def _collect(args: argparse.Namespace) -> int:
     from watchtower.attach import Beacon
 
-    _, security = _listen(args.listen, args.insecure)
+    security, keys = _listen(args.listen, args.insecure, args.keys)
     recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
     ingest = Ingest()
-    collector = _collector(args.listen, ingest, recorder)
+    collector = _collector(args.listen, ingest, recorder, keys)
     beacon = Beacon({"recording": str(args.record.resolve()), "listen": collector.bound, "security": security})
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
@@ -212,8 +244,43 @@ def _collect(args: argparse.Namespace) -> int:
         collector.close()
     loss = ingest.ledger
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
-          f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing "
-          f"-> {args.record}")
+          f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
+          f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    return 0
+
+
+def _keys_init(args: argparse.Namespace) -> int:
+    from watchtower.keys import AGENTS, init_keys
+
+    public, secret = init_keys(args.dir)
+    print(f"head key pair made in {args.dir}:\n"
+          f"  public  {public}  (copy to every node: watchtower-agent ... --server-key {public.name})\n"
+          f"  secret  {secret}  (stays on this node; keep it private)\n"
+          f"allow-list: {args.dir / AGENTS}/ (add agents with: watchtower keys agent NAME --dir {args.dir})\n"
+          f"listen with: watchtower collect --keys {args.dir} --listen tcp://*:5555 --record run.wtrace")
+    return 0
+
+
+def _keys_agent(args: argparse.Namespace) -> int:
+    from watchtower.keys import HEAD, new_agent
+
+    folder = args.dir or Path(os.environ.get(KEYS_ENV) or DEFAULT_KEYS)
+    files = new_agent(args.name, folder)
+    print(f"agent {args.name!r}: public key {files.public} is in the allow-list\n"
+          f"  secret key: {files.secret}\n"
+          f"copy to the node: {files.secret} and {folder / f'{HEAD}.key'}, then start its agents with\n"
+          f"  watchtower-agent run --keys {files.secret.name} --server-key {HEAD}.key --collector tcp://HEAD:5555\n"
+          f"keep the secret file private (mode 0600) and delete this copy once it is on the node: whoever holds "
+          f"it can send figures as this agent")
+    return 0
+
+
+def _merge(args: argparse.Namespace) -> int:
+    from watchtower.merge import merge
+
+    result = merge(args.out, args.inputs)
+    for line in result.lines():
+        print(line)
     return 0
 
 

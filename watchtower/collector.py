@@ -4,6 +4,11 @@ Agents connect out with DEALER sockets and send ``[b"", header, ...]``; a relay 
 routing frames in front, so everything up to the first empty frame is the return address. Frames are
 appended to the recording before they are interpreted, so a frame that our decoder later rejects is still
 kept (and counted the same way on replay).
+
+With keys (``watchtower.keys``) the socket is a CURVE server: traffic is encrypted, and a ZAP handler
+admits only agents whose public key is in the allow-list. A refused handshake never reaches the socket
+as a message, so a monitor on the socket counts each one in the ledger (``rejected`` by reason); they
+are not frames, so a recording does not hold them.
 """
 
 from __future__ import annotations
@@ -18,10 +23,13 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 import zmq
+from zmq.auth.thread import ThreadAuthenticator
+from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
 from watchtower.attach import Beacon
 from watchtower.ingest import Ingest
+from watchtower.keys import AllowList, HeadKeys
 from watchtower.recording import Recorder
 
 MAX_MESSAGE_BYTES = 64 << 20  # ZeroMQ drops peers that send more in one message (wire caps are far lower)
@@ -29,6 +37,11 @@ DRAIN_BATCH = 4096
 
 _TCP = re.compile(r"^tcp://(?P<host>\[[0-9a-fA-F:.]+\]|[^:/\s]+):(?P<port>\d{1,5})$")
 _IPC = re.compile(r"^ipc://(?P<path>\S+)$")
+_REFUSALS = zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH
+_PROTOCOL_REASONS = {
+    zmq.PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH: "no-curve",  # an agent started without keys
+    zmq.PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC: "wrong-server-key",  # it cannot decrypt: it trusts another head
+}
 
 
 class EndpointError(ValueError):
@@ -66,6 +79,15 @@ def parse_endpoint(url: str, *, binding: bool) -> Endpoint:
         return Endpoint(url, loopback=False)
 
 
+def refusal_reason(event: int, value: int) -> str:
+    """The tag a refused handshake is counted under, from a socket monitor event and its value."""
+    if event == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
+        return "unlisted-key" if value == 400 else f"auth-{value}"  # 400: the ZAP handler said no
+    if event == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL:
+        return _PROTOCOL_REASONS.get(value, "protocol")
+    return "handshake"
+
+
 def split_envelope(frames: list[bytes]) -> tuple[list[bytes], list[bytes]]:
     """Split a ROUTER message into (return address, payload) at the first empty frame."""
     for i, frame in enumerate(frames):
@@ -85,7 +107,7 @@ class Collector:
         *,
         context: zmq.Context | None = None,
         on_message: Callable[[int, list[bytes], wire.Message | None], None] | None = None,
-        server_secret: bytes | None = None,
+        keys: HeadKeys | None = None,
     ) -> None:
         self.endpoint = parse_endpoint(listen, binding=True)
         self.ingest = ingest
@@ -98,19 +120,41 @@ class Collector:
         self.socket.setsockopt(zmq.LINGER, 0)
         self.socket.setsockopt(zmq.MAXMSGSIZE, MAX_MESSAGE_BYTES)
         self.socket.setsockopt(zmq.RCVHWM, 100_000)
-        if server_secret is not None:
-            self.socket.curve_server = True
-            self.socket.curve_secretkey = server_secret
+        self.allow_list: AllowList | None = None
+        self.authenticator: ThreadAuthenticator | None = None
+        self._monitor: zmq.Socket | None = None
+        if keys is not None:
+            self._secure(keys)
         try:
             self.socket.bind(listen)
         except zmq.ZMQError as exc:
-            self.socket.close()
+            self._close_sockets()
             raise EndpointError(f"cannot listen on {listen}: {exc.strerror}") from None
         self.bound = self.socket.getsockopt_string(zmq.LAST_ENDPOINT)
 
+    def _secure(self, keys: HeadKeys) -> None:
+        """Make the socket a CURVE server that admits listed agents only, and watch for refusals."""
+        self.allow_list = AllowList(keys.agents)
+        self.authenticator = ThreadAuthenticator(self._ctx)
+        self.authenticator.start()
+        self.authenticator.configure_curve_callback("*", self.allow_list)
+        self.socket.curve_server = True
+        self.socket.curve_publickey = keys.public
+        self.socket.curve_secretkey = keys.secret
+        self._monitor = self.socket.get_monitor_socket(_REFUSALS)
+
+    def _count_refusals(self) -> None:
+        if self._monitor is None:
+            return
+        while self._monitor.poll(0):
+            event = recv_monitor_message(self._monitor)
+            self.ingest.ledger.refuse(refusal_reason(event["event"], event["value"]))
+
     def drain(self, timeout_ms: int) -> int:
         """Wait up to ``timeout_ms`` for traffic, then take everything waiting (bounded batch)."""
+        self._count_refusals()
         if not self.socket.poll(timeout_ms, zmq.POLLIN):
+            self._count_refusals()
             return 0
         batch: list[tuple[int, list[bytes]]] = []
         while len(batch) < DRAIN_BATCH:
@@ -159,6 +203,17 @@ class Collector:
             self.drain(timeout)
 
     def close(self) -> None:
-        self.socket.close()
+        self._close_sockets()
         if self.recorder is not None:
             self.recorder.close()
+
+    def _close_sockets(self) -> None:
+        if self._monitor is not None:
+            self._count_refusals()
+            self.socket.disable_monitor()
+            self._monitor.close()
+            self._monitor = None
+        self.socket.close()
+        if self.authenticator is not None:
+            self.authenticator.stop()
+            self.authenticator = None

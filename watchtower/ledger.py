@@ -3,6 +3,10 @@
 Every sender numbers its frames from 0, including the ones it had to drop, so a gap in the numbers is a
 frame that never arrived, wherever it was lost. A late frame that fills a gap is taken back off the
 missing count; a repeated number is counted as a duplicate and not delivered twice.
+
+``missing`` is what the senders' own drops and any loss on the way add up to (a sender numbers the
+frames it dropped too); ``dropped_at_senders`` is the senders' own share of it, never to be added to it.
+``rejected`` counts connections the collector refused at the CURVE handshake (no frame was read).
 """
 
 from __future__ import annotations
@@ -50,6 +54,7 @@ class Ledger:
 
     senders: dict[int, SenderLedger] = field(default_factory=dict)
     bad: Counter[str] = field(default_factory=Counter)
+    rejected: Counter[str] = field(default_factory=Counter)
 
     def accept(self, sender: int, seq: int) -> bool:
         ledger = self.senders.get(sender)
@@ -59,6 +64,10 @@ class Ledger:
 
     def reject(self, reason: str) -> None:
         self.bad[reason] += 1
+
+    def refuse(self, reason: str) -> None:
+        """Count a handshake the collector refused (see ``watchtower.collector.refusal_reason``)."""
+        self.rejected[reason] += 1
 
     @property
     def frames(self) -> int:
@@ -89,4 +98,6 @@ class Ledger:
             "duplicates": self.duplicates,
             "dropped_at_senders": self.dropped_at_senders,
             "senders": len(self.senders),
+            "rejected": sum(self.rejected.values()),
+            "rejected_reasons": dict(sorted(self.rejected.items())),
         }

@@ -1,111 +1,101 @@
 """Recordings: the frames a collector received, appended to a file that survives a crash.
 
-Layout (all little-endian)::
+The layout and the writer live in ``agent/records.py`` (a probe's spool uses the same layout); in short::
 
-    file   := preamble record*
-    preamble := b"wtrace\\x00\\x01" u32 meta_len  meta_len bytes of UTF-8 JSON (who, when, notes)
-    record := u32 body_len  u32 crc32(body)  body
-    body   := i64 received_ns  u16 n_parts  (u32 part_len  part)*
+    file   := preamble (record | resume)*
+    record := u32 body_len  u32 crc32(body)  body      body := i64 received_ns  u16 n_parts  (u32 len  part)*
+    resume := a 32-byte marker a restarted writer appends, naming its own byte offset
 
 Each record is written with one ``write`` on an unbuffered file, so a crash of the writer loses at most
-the record being written. The reader streams records and stops at the first torn or corrupt one,
-reporting the byte offset where the trouble starts; everything before it is still delivered.
+the record being written. The reader streams records. At a torn or corrupt record it searches forward for
+a resume marker that names its own offset: a collector killed mid-record and restarted leaves exactly
+that, and reading goes on after the marker, the skipped bytes reported in ``Tail.skipped``. Without such
+a marker it stops, reporting the byte offset where the trouble starts; everything before it is delivered.
 """
 
 from __future__ import annotations
 
 import gzip
 import json
-import struct
 import zlib
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import BinaryIO
 
-PREAMBLE = b"wtrace\x00\x01"
-_META_LEN = struct.Struct("<I")
-_RECORD = struct.Struct("<II")  # body_len, crc32
-_BODY = struct.Struct("<qH")  # received_ns, n_parts
-_PART = struct.Struct("<I")
+from agent.records import (
+    BODY,
+    META_LEN,
+    PART,
+    PREAMBLE,
+    RECORD,
+    RESUME,
+    RESUME_ESCAPE,
+    RESUME_PREFIX,
+    NotARecording,
+    RecordWriter,
+    decode_resume,
+    encode_record,
+)
+
+__all__ = ["PREAMBLE", "NotARecording", "Recorder", "RecordingError", "RecordingReader", "Skip", "Tail",
+           "encode_record", "iter_records", "read_meta", "resume_records"]
+
 MAX_META = 1 << 20
 MAX_RECORD = 64 << 20  # far above any valid frame set (wire caps), far below a torn length field
+SCAN_CHUNK = 1 << 20  # bytes read at a time while searching for a resume marker after damage
+RESUMED = "resumed"  # what _next answers for an intact resume marker
 
 
 class RecordingError(ValueError):
     """The file is not a Watchtower recording at all (a torn tail is not an error, see ``Tail``)."""
 
 
+class Recorder(RecordWriter):
+    """Appends records to a recording; writes the preamble first if the file or stream is empty, and a
+    resume marker first if it already holds data (a restart after a crash)."""
+
+
+@dataclass(frozen=True)
+class Skip:
+    """Bytes stepped over: damage at ``start`` up to the resume marker at ``end``."""
+
+    start: int
+    end: int
+    reason: str
+
+
 @dataclass
 class Tail:
-    """How reading ended: ``clean`` or where (byte offset) and why it stopped early."""
+    """How reading ended: ``clean`` or where (byte offset) and why it stopped early, and what it skipped."""
 
     records: int = 0
     offset: int | None = None
     reason: str = ""
-    consumed: int = 0  # byte offset just past the last complete record
+    consumed: int = 0  # byte offset just past the last complete record (or resume marker)
+    resumes: int = 0  # writer restarts seen (resume markers)
+    skipped: list[Skip] = field(default_factory=list)
 
     def stop(self, reason: str) -> None:
         self.offset, self.reason = self.consumed, reason
 
     @property
     def clean(self) -> bool:
-        return self.offset is None
+        return self.offset is None and not self.skipped
 
     def describe(self) -> str:
-        if self.clean:
-            return f"{self.records} records, complete"
-        return f"{self.records} complete records; stopped at byte {self.offset}: {self.reason}"
-
-
-def encode_record(received_ns: int, frames: list[bytes] | list[memoryview]) -> bytes:
-    parts = [_BODY.pack(received_ns, len(frames))]
-    for frame in frames:
-        parts.append(_PART.pack(len(frame)))
-        parts.append(bytes(frame))
-    body = b"".join(parts)
-    return _RECORD.pack(len(body), zlib.crc32(body)) + body
-
-
-class Recorder:
-    """Appends records to a recording; writes the preamble first if the file or stream is empty."""
-
-    def __init__(self, target: str | Path | BinaryIO, meta: dict | None = None) -> None:
-        if isinstance(target, str | Path):
-            self.path: Path | None = Path(target)
-            self._file: BinaryIO = open(self.path, "ab", buffering=0)  # noqa: SIM115 - lives as long as we do
-        else:  # an open binary stream, e.g. one that is compressed afterwards
-            self.path, self._file = None, target
-        if self._file.tell() == 0:
-            blob = json.dumps(meta or {}, ensure_ascii=False).encode()
-            self._file.write(PREAMBLE + _META_LEN.pack(len(blob)) + blob)
-        self.records = 0
-
-    def write(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> None:
-        self._file.write(encode_record(received_ns, frames))
-        self.records += 1
-
-    def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
-        """Append several records with one write call (what a collector drains at once)."""
-        if batch:
-            self._file.write(b"".join(encode_record(t, frames) for t, frames in batch))
-            self.records += len(batch)
-
-    def close(self) -> None:
-        self._file.close()
-
-    def __enter__(self) -> Recorder:
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+        skipped = "".join(f"; skipped bytes {s.start}-{s.end} ({s.reason}) up to a writer restart"
+                          for s in self.skipped)
+        if self.offset is None:
+            return f"{self.records} records, complete" if not skipped else f"{self.records} records{skipped}"
+        return f"{self.records} complete records{skipped}; stopped at byte {self.offset}: {self.reason}"
 
 
 def read_meta(stream: BinaryIO) -> dict:
-    head = stream.read(len(PREAMBLE) + _META_LEN.size)
-    if len(head) < len(PREAMBLE) + _META_LEN.size or not head.startswith(PREAMBLE):
+    head = stream.read(len(PREAMBLE) + META_LEN.size)
+    if len(head) < len(PREAMBLE) + META_LEN.size or not head.startswith(PREAMBLE):
         raise RecordingError("not a Watchtower recording (bad preamble)")
-    (meta_len,) = _META_LEN.unpack_from(head, len(PREAMBLE))
+    (meta_len,) = META_LEN.unpack_from(head, len(PREAMBLE))
     if meta_len > MAX_META:
         raise RecordingError("not a Watchtower recording (metadata too large)")
     blob = stream.read(meta_len)
@@ -129,32 +119,95 @@ def iter_records(stream: BinaryIO, tail: Tail) -> Iterator[tuple[int, list[bytes
         tail.stop(f"compressed stream damaged ({exc})")
 
 
+class _Source:
+    """A stream with push-back, so the marker search can return what it read past the marker."""
+
+    def __init__(self, stream: BinaryIO) -> None:
+        self._stream = stream
+        self._back = b""
+
+    def read(self, n: int) -> bytes:
+        if not self._back:
+            return self._stream.read(n)
+        data, self._back = self._back[:n], self._back[n:]
+        if len(data) < n:
+            data += self._stream.read(n - len(data))
+        return data
+
+    def unread(self, data: bytes) -> None:
+        self._back = data + self._back
+
+
 def _records(stream: BinaryIO, tail: Tail) -> Iterator[tuple[int, list[bytes]]]:
+    source = _Source(stream)
     while True:
-        head = stream.read(_RECORD.size)
+        head = source.read(RECORD.size)
         if not head:
             return
-        if len(head) < _RECORD.size:
-            tail.stop("torn record header")
+        damage, body = _next(source, head, tail)
+        if damage is None:
+            record = _split_body(body)
+            if record is not None:
+                tail.records += 1
+                tail.consumed += RECORD.size + len(body)
+                yield record
+                continue
+            damage = "malformed record body"
+        elif damage == RESUMED:
+            continue
+        if not _resync(source, head + body, tail, damage):
+            tail.stop(damage)
             return
-        body_len, crc = _RECORD.unpack(head)
-        if body_len > MAX_RECORD or body_len < _BODY.size:
-            tail.stop(f"implausible record length {body_len}")
-            return
-        body = stream.read(body_len)
-        if len(body) < body_len:
-            tail.stop(f"torn record ({len(body)} of {body_len} bytes)")
-            return
-        if zlib.crc32(body) != crc:
-            tail.stop("checksum mismatch")
-            return
-        record = _split_body(body)
-        if record is None:
-            tail.stop("malformed record body")
-            return
-        tail.records += 1
-        tail.consumed += _RECORD.size + body_len
-        yield record
+
+
+
+def _next(source: _Source, head: bytes, tail: Tail) -> tuple[str | None, bytes]:
+    """Read what follows a record header: (None, body) for an intact record, (``RESUMED``, marker rest)
+    for an intact resume marker (consumed here), else (what is wrong, the bytes read after ``head``)."""
+    if len(head) < RECORD.size:
+        return "torn record header", b""
+    body_len, crc = RECORD.unpack(head)
+    if body_len == RESUME_ESCAPE:
+        rest = source.read(RESUME.size - len(head))
+        if decode_resume(head + rest, tail.consumed):
+            tail.resumes += 1
+            tail.consumed += RESUME.size
+            return RESUMED, rest
+        return ("torn resume marker" if len(rest) < RESUME.size - len(head) else "bad resume marker"), rest
+    if body_len > MAX_RECORD or body_len < BODY.size:
+        return f"implausible record length {body_len}", b""
+    body = source.read(body_len)
+    if len(body) < body_len:
+        return f"torn record ({len(body)} of {body_len} bytes)", body
+    if zlib.crc32(body) != crc:
+        return "checksum mismatch", body
+    return None, body
+
+
+def _resync(source: _Source, seen: bytes, tail: Tail, reason: str) -> bool:
+    """After damage at ``tail.consumed`` (``seen`` = the bytes read from there), look for a resume marker
+    that names its own offset; if one is found, note the skip and continue after it. Reads at most
+    ``SCAN_CHUNK`` bytes at a time, so a long damaged stretch costs time, not memory."""
+    start = tail.consumed
+    base, data = start + 1, seen[1:]
+    while True:
+        i = data.find(RESUME_PREFIX)
+        if i < 0:
+            keep = len(RESUME_PREFIX) - 1
+            base, data = base + max(0, len(data) - keep), data[-keep:]
+        elif len(data) - i >= RESUME.size:
+            if decode_resume(data[i:i + RESUME.size], base + i):
+                source.unread(data[i + RESUME.size:])
+                tail.skipped.append(Skip(start, base + i, reason))
+                tail.resumes += 1
+                tail.consumed = base + i + RESUME.size
+                return True
+            base, data = base + i + 1, data[i + 1:]
+            continue
+        more = source.read(SCAN_CHUNK)
+        if not more:
+            return False
+        data += more
 
 
 def resume_records(path: str | Path, tail: Tail) -> Iterator[tuple[int, list[bytes]]]:
@@ -166,15 +219,15 @@ def resume_records(path: str | Path, tail: Tail) -> Iterator[tuple[int, list[byt
 
 
 def _split_body(body: bytes) -> tuple[int, list[bytes]] | None:
-    received_ns, n_parts = _BODY.unpack_from(body)
+    received_ns, n_parts = BODY.unpack_from(body)
     view = memoryview(body)
-    pos = _BODY.size
+    pos = BODY.size
     frames: list[bytes] = []
     for _ in range(n_parts):
-        if pos + _PART.size > len(body):
+        if pos + PART.size > len(body):
             return None
-        (length,) = _PART.unpack_from(body, pos)
-        pos += _PART.size
+        (length,) = PART.unpack_from(body, pos)
+        pos += PART.size
         if pos + length > len(body):
             return None
         frames.append(view[pos:pos + length])

@@ -1,0 +1,116 @@
+"""The record layout of recordings and spools, and the append-only writer both use.
+
+It lives on the node side so a probe can spool frames locally in exactly the layout the head's
+recordings use (``watchtower/recording.py`` reads both and re-exports these names). Layout, little-endian::
+
+    file     := preamble (record | resume)*
+    preamble := b"wtrace\\x00\\x01" u32 meta_len  meta_len bytes of UTF-8 JSON (who, when, notes)
+    record   := u32 body_len  u32 crc32(body)  body
+    body     := i64 time_ns  u16 n_parts  (u32 part_len  part)*
+    resume   := u32 0xFFFFFFFF  8s b"wtresume"  u64 at  i64 wall_ns  u32 crc32(the 28 bytes before it)
+
+A writer that opens a file that already holds data (a collector restarted after a crash) first appends a
+``resume`` marker whose ``at`` is its own byte offset. A writer killed mid-record leaves a torn record;
+the next writer's marker follows it directly, so a reader that meets damage can search forward for a
+marker that names its own offset and go on reading after it (see ``watchtower.recording``).
+"""
+
+from __future__ import annotations
+
+import json
+import struct
+import time
+import zlib
+from pathlib import Path
+from typing import BinaryIO
+
+PREAMBLE = b"wtrace\x00\x01"
+META_LEN = struct.Struct("<I")
+RECORD = struct.Struct("<II")  # body_len, crc32
+BODY = struct.Struct("<qH")  # time_ns, n_parts
+PART = struct.Struct("<I")
+RESUME = struct.Struct("<I8sQqI")  # escape, magic, at, wall_ns, crc32
+RESUME_ESCAPE = 0xFFFF_FFFF  # where a record's body_len would be: no record is that long
+RESUME_MAGIC = b"wtresume"
+RESUME_PREFIX = RECORD.pack(RESUME_ESCAPE, 0)[:4] + RESUME_MAGIC
+
+
+def encode_record(time_ns: int, frames: list[bytes] | list[memoryview]) -> bytes:
+    """One record: the frames of one message and when it was received (or, in a spool, sent)."""
+    parts = [BODY.pack(time_ns, len(frames))]
+    for frame in frames:
+        parts.append(PART.pack(len(frame)))
+        parts.append(bytes(frame))
+    body = b"".join(parts)
+    return RECORD.pack(len(body), zlib.crc32(body)) + body
+
+
+def encode_resume(at: int, wall_ns: int) -> bytes:
+    """The marker a writer appends before its first record when the file already holds data."""
+    head = RESUME.pack(RESUME_ESCAPE, RESUME_MAGIC, at, wall_ns, 0)[:-4]
+    return head + struct.pack("<I", zlib.crc32(head))
+
+
+def decode_resume(blob: bytes, at: int) -> bool:
+    """Whether ``blob`` (RESUME.size bytes) is an intact marker written at byte ``at``."""
+    if len(blob) != RESUME.size:
+        return False
+    escape, magic, where, _, crc = RESUME.unpack(blob)
+    return escape == RESUME_ESCAPE and magic == RESUME_MAGIC and where == at and zlib.crc32(blob[:-4]) == crc
+
+
+class NotARecording(ValueError):
+    """Appending would damage a file that is not a recording (the message is one line for the user)."""
+
+
+def _check_appendable(path: Path) -> None:
+    """Refuse to append records to a file that holds something else (a mistyped path)."""
+    try:
+        with open(path, "rb") as stream:
+            head = stream.read(len(PREAMBLE))
+    except FileNotFoundError:
+        return
+    if head and head != PREAMBLE[: len(head)]:
+        raise NotARecording(f"{path} is not a Watchtower recording; not appending to it")
+
+
+class RecordWriter:
+    """Appends records; writes the preamble into an empty file, a resume marker into a non-empty one.
+
+    Each record goes out in one ``write`` on an unbuffered file, so a crash loses at most the record being
+    written, and the next writer's marker lets readers step over it.
+    """
+
+    def __init__(self, target: str | Path | BinaryIO, meta: dict | None = None) -> None:
+        if isinstance(target, str | Path):
+            self.path: Path | None = Path(target)
+            _check_appendable(self.path)
+            self._file: BinaryIO = open(self.path, "ab", buffering=0)  # noqa: SIM115 - lives as long as we do
+        else:  # an open binary stream, e.g. one that is compressed afterwards
+            self.path, self._file = None, target
+        at = self._file.tell()
+        if at == 0:
+            blob = json.dumps(meta or {}, ensure_ascii=False).encode()
+            self._file.write(PREAMBLE + META_LEN.pack(len(blob)) + blob)
+        else:
+            self._file.write(encode_resume(at, time.time_ns()))
+        self.records = 0
+
+    def write(self, time_ns: int, frames: list[bytes] | list[memoryview]) -> None:
+        self._file.write(encode_record(time_ns, frames))
+        self.records += 1
+
+    def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
+        """Append several records with one write call (what a collector drains at once)."""
+        if batch:
+            self._file.write(b"".join(encode_record(t, frames) for t, frames in batch))
+            self.records += len(batch)
+
+    def close(self) -> None:
+        self._file.close()
+
+    def __enter__(self) -> RecordWriter:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
