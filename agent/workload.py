@@ -6,14 +6,15 @@ its halo to each and receives theirs, all at once from one thread with non-block
 exchanges overlap their transfers. Halo sizes vary by layer (``exchange_bytes`` × a factor from 1/8 to 2,
 the same for every rank) so that link models t = α + n/β can be fitted from the records.
 
-Records (see ``agent.probe``), one per message:
+Records (see ``agent.probe``), one per message; the layer's exchange time is the whole halo phase:
 
-- SEND to a neighbour: from the start of the layer's halo phase until the last byte of the message was
-  accepted by the kernel; ``nbytes`` is the halo (the 32-byte message header is not counted).
-- RECV from a neighbour: from the start of the halo phase until the last byte of that neighbour's
-  message was read; ``wait`` is the part before the neighbour stamped the start of its send (the
-  neighbour was not ready yet), the rest is transfer. The stamp is the sender's ``time.time_ns()``, so
-  the split assumes the two hosts' wall clocks agree (same host, or NTP-synchronised hosts).
+- SEND to a neighbour: from the start of the send until the last byte of the message was accepted by the
+  kernel; ``nbytes`` is the halo (the 32-byte message header is not counted).
+- RECV from a neighbour: the bytes on the wire, from when they could start moving (the neighbour's
+  ``time.time_ns()`` stamp at the start of its send, or the previous message's arrival on the same
+  connection if that was later) until the kernel's arrival stamp of the last byte (SO_TIMESTAMPNS; the
+  time of the read where the kernel gives none). The stamps compare wall clocks, which holds on one host
+  or NTP-synchronised hosts.
 
 World 1 has no neighbours: layers only compute. World 2 has one neighbour on both sides: the halo is
 exchanged once per layer with it (one SEND and one RECV), not twice.
@@ -32,7 +33,8 @@ import numpy as np
 import zmq
 
 from agent import wire
-from agent.probe import Exchange, Probe
+from agent.probe import Probe
+from agent.records import NotARecording
 
 SLAB = 64  # side of each rank's square slab; a 64×64 float64 product takes tens of microseconds
 CALIBRATE_NS = 20_000_000  # time spent measuring the cost of one compute repetition at startup
@@ -41,6 +43,10 @@ HELLO = struct.Struct("<4sII")  # magic, rank, world: the first bytes on a new l
 HELLO_MAGIC = b"wtlk"
 HALO = struct.Struct("<4sIIqQI")  # magic, step, layer, sender wall ns at send start, halo bytes, reserved
 HALO_MAGIC = b"wtha"
+# Linux's SO_TIMESTAMPNS (the socket module does not name it); the kernel stamps arrivals in CLOCK_REALTIME.
+SO_TIMESTAMPNS = 35
+TIMESPEC = struct.Struct("@qq")
+ANCILLARY_BYTES = socket.CMSG_SPACE(TIMESPEC.size)
 
 
 class WorkloadError(RuntimeError):
@@ -63,6 +69,8 @@ class WorkloadConfig:
     compute_ms: float = 5.0
     seed: int = 0
     connect_timeout_s: float = 30.0
+    curve_keys: tuple[bytes, bytes, bytes] | None = None  # the probe's (public, secret, collector public)
+    spool: str | None = None  # local recording of every frame the probe numbers
 
 
 @dataclass(frozen=True, slots=True)
@@ -223,8 +231,8 @@ def _accept(listener: socket.socket, rank: int, world: int, waiting: set[int],
 class _Link:
     """One neighbour's side of a halo phase: our outgoing message and its incoming one."""
 
-    __slots__ = ("header_done", "incoming", "out", "peer", "received", "recv_ex", "send_ex", "sent", "sock",
-                 "want")
+    __slots__ = ("arrival_wall", "header_done", "incoming", "last_arrival_wall", "out", "peer", "received",
+                 "receiving", "send_start", "sending", "sent", "sent_wall", "sock", "want")
 
     def __init__(self, peer: int, sock: socket.socket, capacity: int) -> None:
         self.peer, self.sock = peer, sock
@@ -232,13 +240,40 @@ class _Link:
         self.incoming = bytearray(HALO.size + capacity)
         self.sent = self.received = 0
         self.want = HALO.size  # bytes expected so far: the header, then header and halo
-        self.header_done = False
-        self.send_ex: Exchange | None = None
-        self.recv_ex: Exchange | None = None
+        self.header_done = self.sending = self.receiving = False
+        self.send_start = 0  # probe clock
+        self.sent_wall = self.arrival_wall = 0  # wall clock: the neighbour's send stamp, our newest arrival
+        self.last_arrival_wall = 0  # wall clock: when the previous message from this neighbour was all in
+        _timestamp_arrivals(sock)
+
+
+def _timestamp_arrivals(sock: socket.socket) -> None:
+    """Ask the kernel to stamp when received bytes arrived (Linux SO_TIMESTAMPNS); best effort."""
+    with contextlib.suppress(OSError):
+        sock.setsockopt(socket.SOL_SOCKET, SO_TIMESTAMPNS, 1)
+
+
+def _arrival_wall(ancillary: list[tuple[int, int, bytes]]) -> int:
+    """When the bytes just read reached this host: the kernel's stamp of the last packet read, else now."""
+    for level, kind, data in ancillary:
+        if level == socket.SOL_SOCKET and kind == SO_TIMESTAMPNS and len(data) >= TIMESPEC.size:
+            seconds, nanoseconds = TIMESPEC.unpack_from(data)
+            return seconds * 1_000_000_000 + nanoseconds
+    return time.time_ns()
 
 
 class HaloRing:
-    """Runs halo phases over established links, timing every message with the probe."""
+    """Runs halo phases over established links, timing every message with the probe.
+
+    The rank's exposed time is the whole halo phase (``probe.blocked``). Each message is recorded as a
+    transfer for the link models, with times that describe the bytes on the wire, not the rank's view:
+
+    - RECV: from when the bytes could start moving, the later of the neighbour's send stamp and the
+      previous message's arrival on the same connection (a connection is a queue), until the kernel's
+      arrival stamp of the last byte, so a rank that was still computing when they came in does not
+      stretch the transfer;
+    - SEND: from the start of the send until the kernel accepted the last byte (the sender's view).
+    """
 
     def __init__(self, links: dict[int, socket.socket], capacity: int, idle_timeout_s: float) -> None:
         self.links = [_Link(peer, sock, capacity) for peer, sock in sorted(links.items())]
@@ -249,69 +284,82 @@ class HaloRing:
         """Send ``halo`` to every neighbour and receive theirs, overlapped. Returns the start of each
         received halo (the boundary values a slab absorbs), copied so the buffers can be reused."""
         n = len(halo)
-        for link in self.links:
-            link.send_ex = probe.exchange(name, peer=link.peer, nbytes=n, op=wire.Op.SEND)
-            link.recv_ex = probe.exchange(name, peer=link.peer, nbytes=0, op=wire.Op.RECV)
-        for link in self.links:
-            HALO.pack_into(link.out, 0, HALO_MAGIC, step, layer, time.time_ns(), n, 0)
-            link.out[HALO.size : HALO.size + n] = halo.data
-            link.sent, link.received, link.want, link.header_done = 0, 0, HALO.size, False
-            self._selector.register(link.sock, selectors.EVENT_READ | selectors.EVENT_WRITE, link)
-        pending = len(self.links)
-        while pending:
-            events = self._selector.select(self.idle_timeout_s)
-            if not events:
-                raise WorkloadError(f"no halo traffic for {self.idle_timeout_s:g} s in step {step} layer {layer}")
-            for key, mask in events:
-                link = key.data
-                if mask & selectors.EVENT_WRITE and link.send_ex is not None:
-                    self._write(link, HALO.size + n)
-                if mask & selectors.EVENT_READ and link.recv_ex is not None:
-                    self._read(link, step, layer)
-                if link.send_ex is None and link.recv_ex is None:
-                    self._selector.unregister(link.sock)
-                    pending -= 1
-                elif link.send_ex is None and key.events & selectors.EVENT_WRITE:  # sent: now only read
-                    self._selector.modify(link.sock, selectors.EVENT_READ, link)
+        with probe.blocked(name):
+            for link in self.links:
+                link.send_start = probe.clock()
+                HALO.pack_into(link.out, 0, HALO_MAGIC, step, layer, time.time_ns(), n, 0)
+                link.out[HALO.size : HALO.size + n] = halo.data
+                link.sent, link.received, link.want, link.header_done = 0, 0, HALO.size, False
+                link.sending = link.receiving = True
+                self._selector.register(link.sock, selectors.EVENT_READ | selectors.EVENT_WRITE, link)
+            pending = len(self.links)
+            while pending:
+                events = self._selector.select(self.idle_timeout_s)
+                if not events:
+                    raise WorkloadError(f"no halo traffic for {self.idle_timeout_s:g} s in step {step} layer {layer}")
+                for key, mask in events:
+                    link = key.data
+                    if mask & selectors.EVENT_WRITE and link.sending and self._write(link, HALO.size + n):
+                        probe.record_transfer(name, op=wire.Op.SEND, peer=link.peer, nbytes=n,
+                                              start_ns=link.send_start, end_ns=probe.clock())
+                    if mask & selectors.EVENT_READ and link.receiving and self._read(link, step, layer):
+                        self._record_arrival(probe, name, link)
+                    if not (link.sending or link.receiving):
+                        self._selector.unregister(link.sock)
+                        pending -= 1
+                    elif not link.sending and key.events & selectors.EVENT_WRITE:  # sent: now only read
+                        self._selector.modify(link.sock, selectors.EVENT_READ, link)
         return [bytes(link.incoming[HALO.size : min(link.want, HALO.size + 8 * SLAB)]) for link in self.links]
 
-    def _write(self, link: _Link, total: int) -> None:
+    @staticmethod
+    def _record_arrival(probe: Probe, name: str, link: _Link) -> None:
+        began = max(link.sent_wall, link.last_arrival_wall)
+        ended = max(link.arrival_wall, began)
+        start = probe.from_wall(began)
+        probe.record_transfer(name, op=wire.Op.RECV, peer=link.peer, nbytes=link.want - HALO.size,
+                              start_ns=start, end_ns=probe.from_wall(ended), peer_ready_ns=start)
+        link.last_arrival_wall = ended
+
+    def _write(self, link: _Link, total: int) -> bool:
+        """Send what the kernel takes; True when the whole message has been handed over."""
         try:
             link.sent += link.sock.send(memoryview(link.out)[link.sent : total])
         except BlockingIOError:
-            return
+            return False
         except OSError as exc:
             raise WorkloadError(f"sending to rank {link.peer} failed: {exc.strerror or exc}") from None
-        if link.sent == total:
-            link.send_ex.stop()
-            link.send_ex = None
+        link.sending = link.sent < total
+        return not link.sending
 
-    def _read(self, link: _Link, step: int, layer: int) -> None:
+    def _read(self, link: _Link, step: int, layer: int) -> bool:
+        """Read what has arrived; True when the neighbour's whole message is in."""
         try:
-            got = link.sock.recv_into(memoryview(link.incoming)[link.received : link.want])
+            got, ancillary, _, _ = link.sock.recvmsg_into([memoryview(link.incoming)[link.received : link.want]],
+                                                          ANCILLARY_BYTES)
         except BlockingIOError:
-            return
+            return False
         except OSError as exc:
             raise WorkloadError(f"receiving from rank {link.peer} failed: {exc.strerror or exc}") from None
         if got == 0:
             raise WorkloadError(f"rank {link.peer} closed its connection")
+        link.arrival_wall = _arrival_wall(ancillary)
         link.received += got
         if link.received < link.want:
-            return
+            return False
         if not link.header_done:
             magic, peer_step, peer_layer, sent_wall_ns, nbytes, _ = HALO.unpack_from(link.incoming)
             if magic != HALO_MAGIC or (peer_step, peer_layer) != (step, layer) or nbytes > MAX_HALO_BYTES:
                 raise WorkloadError(f"rank {link.peer} sent step {peer_step} layer {peer_layer}, "
                                     f"expected step {step} layer {layer}")
-            link.recv_ex.peer_ready_at_wall(sent_wall_ns)
+            link.sent_wall = sent_wall_ns
             link.header_done = True
             link.want = HALO.size + nbytes
             if len(link.incoming) < link.want:  # the neighbour runs with larger halos than we do
                 link.incoming.extend(bytes(link.want - len(link.incoming)))
             if link.received < link.want:
-                return
-        link.recv_ex.stop(nbytes=link.want - HALO.size)
-        link.recv_ex = None
+                return False
+        link.receiving = False
+        return True
 
     def close(self) -> None:
         self._selector.close()
@@ -336,9 +384,13 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
         cleanup.callback(ctx.term)  # waits up to the probe's linger for queued frames to reach the collector
         try:
             probe = Probe(config.rank, world, config.node, config.collector, layers=names, job="halo-ring",
-                          context=ctx)
+                          context=ctx, curve_keys=config.curve_keys, spool=config.spool)
         except zmq.ZMQError as exc:
             raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
+        except OSError as exc:
+            raise ConnectError(f"cannot write the spool {config.spool}: {exc.strerror}") from None
+        except NotARecording as exc:
+            raise ConnectError(str(exc)) from None
         cleanup.callback(probe.close)
         ring = HaloRing(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
                         max(sizes), config.connect_timeout_s)

@@ -9,6 +9,7 @@ from agent_helpers import DEADLINE_S, FakeCollector
 from agent import wire
 from agent.clock import ManualClock
 from agent.probe import Probe
+from agent.wire import Op
 
 
 def _probe(clock: ManualClock, **kwargs: object) -> Probe:
@@ -197,3 +198,20 @@ def test_full_queue_drops_and_counts_then_recovers(tmp_path, zmq_context: zmq.Co
     # Sequence numbers are exact: the gap in them is precisely the frames that were dropped.
     assert [m.header.seq for m in messages] == [0, 1, 2, 3, 19, 20]
     probe.close()
+
+
+def test_record_transfer_keeps_the_transfer_and_charges_only_the_exposed_part() -> None:
+    clock = ManualClock()
+    probe = Probe(0, 2, "n", None, clock=clock)
+    clock.advance(1_000)
+    probe.record_transfer("sync", op=Op.ALLREDUCE, group=2, nbytes=4096, start_ns=200, end_ns=900, exposed_ns=150)
+    probe.record_transfer("halo", op=Op.RECV, peer=1, nbytes=64, start_ns=100, end_ns=600, peer_ready_ns=50)
+    probe.end_step()
+    step = wire.decode(probe.sent_frames[-1])
+    assert isinstance(step, wire.Step)
+    assert step.layer_ns[1].tolist() == [150, 0]  # hidden time costs nothing
+    table = step.exchanges
+    assert table[wire.X_START].tolist() == [200, 100] and table[wire.X_END].tolist() == [900, 600]
+    assert table[wire.X_WAIT].tolist() == [wire.UNKNOWN_WAIT, -50]  # the peer was ready 50 ns before
+    with pytest.raises(ValueError):
+        probe.record_transfer("halo", op=Op.RECV, peer=5, nbytes=1, start_ns=0, end_ns=1)
