@@ -3,7 +3,8 @@
     python bench/bench_analysis.py                      # 4096 ranks × 256 layers × 100 steps, float32
     python bench/bench_analysis.py --dtype float64      # the same in float64 (≈ 1.7 GB for the two cubes)
 
-The window also carries point-to-point transfers (each rank to two neighbours on other nodes, every step)
+The window also carries point-to-point transfers (each rank to two neighbours on other nodes, every step,
+overlapping at the nodes' ports, so the concurrency correction of link β has real work to do)
 and one allreduce per rank and step. Prints seconds and the ratio to ``compute_s.sum()`` for the cube pass
 alone and for the whole analysis; the target is well under a second on one core.
 """
@@ -41,8 +42,9 @@ def make_window(ranks: int, layers: int, steps: int, dtype: str, per_node: int =
     nbytes = rng.choice(np.array([1 << 16, 1 << 20, 1 << 22]), len(r))
     secs = 2e-5 + nbytes / 10e9 * rng.uniform(1.0, 1.5, len(r))
     n = len(r)
+    start = s + rng.uniform(0.0, 0.01, n)  # one step a second, ranks starting within 10 ms: flows overlap
     transfers = Transfers(s.astype(np.int64), (s % layers).astype(np.int32), r.astype(np.int32),
-                          dst.astype(np.int32), nbytes.astype(np.int64), np.zeros(n), secs, np.full(n, np.nan))
+                          dst.astype(np.int32), nbytes.astype(np.int64), start, start + secs, np.full(n, np.nan))
     k = steps * ranks
     collectives = Collectives(np.repeat(np.arange(steps), ranks), np.full(k, layers - 1, np.int32),
                               np.tile(np.arange(ranks), steps).astype(np.int32), np.full(k, Op.ALLREDUCE, np.int16),

@@ -9,7 +9,8 @@ gradients are summed with a ring allreduce at the end of each step). The fault s
 - kestrel-02's way out degrades from step 260 (think of a failing transceiver): a degradation to catch;
 - rank 9 (on kestrel-03) computes 30% slower than its peers (think of a throttled GPU): a straggler.
 
-The recording is produced by the real ``agent.Probe`` driven by manual clocks, so it goes through exactly
+Halos between nodes share ports max-min fairly (``flowsim.py``). The recording is produced by the real
+``agent.Probe`` driven by manual clocks, so it goes through exactly
 the code path a live job uses. Run ``python demo/kestrel.py`` to rebuild ``watchtower/data/kestrel.wtrace.gz``;
 the output is byte-for-byte the same on every run.
 """
@@ -27,6 +28,9 @@ import numpy as np
 from agent import Op, Probe, wire
 from agent.clock import ManualClock
 from watchtower.recording import Recorder
+
+sys.path.insert(0, str(Path(__file__).parent))  # flowsim.py, beside this file
+from flowsim import run_flows
 
 NODES = tuple(f"kestrel-{i:02d}" for i in range(1, 7))
 RANKS_PER_NODE = 4
@@ -75,17 +79,14 @@ def node_of(rank: int) -> int:
     return rank // RANKS_PER_NODE
 
 
-def link_rate(src: int, dst: int, step: int) -> tuple[float, float]:
-    """(alpha seconds, beta bytes/s) of the path from rank ``src`` to rank ``dst`` at ``step``."""
-    a, b = node_of(src), node_of(dst)
-    if a == b:
-        return ALPHA_INTRA_S, INTRA_NODE_BPS
-    beta = NOMINAL_BPS * PAYLOAD
-    if SLOW_NODE in (NODES[a], NODES[b]):
-        beta *= SLOW_FACTOR
-    if NODES[a] == DEGRADING_NODE and step >= DEGRADE_AT:
-        beta *= DEGRADED_FACTOR
-    return ALPHA_INTER_S, beta
+def port_capacity(step: int) -> np.ndarray:
+    """Payload capacity (bytes/s) of every node's way out (first 6) and way in (last 6) at ``step``."""
+    out = np.full(len(NODES), NOMINAL_BPS * PAYLOAD)
+    out[NODES.index(SLOW_NODE)] *= SLOW_FACTOR
+    inn = out.copy()
+    if step >= DEGRADE_AT:
+        out[NODES.index(DEGRADING_NODE)] *= DEGRADED_FACTOR
+    return np.concatenate([out, inn])
 
 
 @dataclass
@@ -142,24 +143,31 @@ def _run(probe: Probe, clock: ManualClock, start: float, end: float, region: obj
 
 def _halo_exchange(probes: list[Probe], clocks: list[ManualClock], name: str, nbytes: int, ready: np.ndarray,
                    step: int, rng: np.random.Generator, daemons: _Daemons) -> np.ndarray:
-    """Every rank sends its halo to both ring neighbours and waits for theirs; returns when each is done."""
+    """Every rank sends its halo to both ring neighbours and waits for theirs; returns when each is done.
+
+    Halos between ranks of one node move at the on-board rate. Halos between nodes share ports: a node's
+    two outgoing halos share its way out, and its two incoming ones its way in, max-min fairly over time
+    (``flowsim``), the way concurrent TCP flows roughly do."""
     done = ready.copy()
-    for dst in range(WORLD):
-        for src in ((dst - 1) % WORLD, (dst + 1) % WORLD):
-            alpha, beta = link_rate(src, dst, step)
-            jitter = rng.lognormal(0.0, 0.02)
-            if rng.random() < 0.04:
-                jitter *= 1.0 + rng.exponential(0.5)  # an occasional hiccup, as real links have
-            start = max(ready[src], ready[dst])
-            end = start + (alpha + nbytes / beta) * jitter
-            clock = clocks[dst]
-            clock.now = _ns(ready[dst])
-            exchange = probes[dst].exchange(name, peer=src, nbytes=nbytes, op=Op.RECV)
-            exchange.peer_ready_at(_ns(max(ready[src], ready[dst])))
-            clock.now = _ns(end)
-            exchange.stop()
-            done[dst] = max(done[dst], end)
-            daemons.traffic(node_of(src), node_of(dst), nbytes)
+    pairs = [(src, dst) for dst in range(WORLD) for src in ((dst - 1) % WORLD, (dst + 1) % WORLD)]
+    start = np.array([max(ready[src], ready[dst]) for src, dst in pairs])
+    jitter = rng.lognormal(0.0, 0.02, len(pairs))
+    hiccup = rng.random(len(pairs)) < 0.04
+    jitter[hiccup] *= 1.0 + rng.exponential(0.5, hiccup.sum())  # an occasional hiccup, as real links have
+    end = start + (ALPHA_INTRA_S + nbytes / INTRA_NODE_BPS) * jitter
+    remote = [i for i, (src, dst) in enumerate(pairs) if node_of(src) != node_of(dst)]
+    paths = [(node_of(pairs[i][0]), len(NODES) + node_of(pairs[i][1])) for i in remote]
+    release = start[remote] + ALPHA_INTER_S
+    end[remote] = release + (run_flows(release, paths, np.full(len(remote), float(nbytes)), port_capacity(step))
+                             - release) * jitter[remote]
+    for (src, dst), began, ended in zip(pairs, start, end, strict=True):
+        clocks[dst].now = _ns(ready[dst])
+        exchange = probes[dst].exchange(name, peer=src, nbytes=nbytes, op=Op.RECV)
+        exchange.peer_ready_at(_ns(began))
+        clocks[dst].now = _ns(ended)
+        exchange.stop()
+        done[dst] = max(done[dst], ended)
+        daemons.traffic(node_of(src), node_of(dst), nbytes)
     return done
 
 
@@ -167,9 +175,8 @@ def _allreduce(probes: list[Probe], clocks: list[ManualClock], t: np.ndarray, st
                rng: np.random.Generator) -> np.ndarray:
     """Ring allreduce of the gradients: 2(p-1)a + 2((p-1)/p) n/b on the slowest hop of the ring
     (Thakur, Rabenseifner & Gropp 2005), after the last rank arrives."""
-    hops = [link_rate(r, (r + 1) % WORLD, step) for r in range(WORLD)]
-    alpha = max(a for a, _ in hops)
-    beta = min(b for _, b in hops)
+    alpha = ALPHA_INTER_S
+    beta = port_capacity(step).min()  # the ring's slowest hop between nodes
     p = WORLD
     cost = (2 * (p - 1) * alpha + 2 * (p - 1) / p * GRADIENT_BYTES / beta) * rng.lognormal(0.0, 0.01)
     end = t.max() + cost

@@ -15,6 +15,7 @@ from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.summary import analyse, analysis_to_json
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
+from watchtower.store import NodeInfo
 
 TREND_POINTS = 60
 WORST_RANKS = 5
@@ -48,7 +49,7 @@ def build_snapshot(
     meta = meta or {}
     window = store.window(last=window_steps)
     series = store.series()
-    snapshot = analysis_to_json(analyse(window, series, cluster))
+    snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes)))
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)
@@ -65,8 +66,6 @@ def build_snapshot(
                                   worst.comm_fraction[:, i], strict=True)
             if math.isfinite(f)
         ]
-    for link in snapshot["links"]:
-        link.setdefault("port", None)
     compute_ns, exchange_ns = store.totals_ns()
     trend = series.step_s[-TREND_POINTS:]
     recent = snapshot.get("recent_step_s")
@@ -97,8 +96,17 @@ def build_snapshot(
             for i, name in enumerate(store.layers)
         ]},
     })
-    snapshot.setdefault("ports", [])
     return snapshot
+
+
+def _window_nics(nodes: list[NodeInfo], names: tuple[str, ...]) -> np.ndarray:
+    """Each window node's latest NIC-counter rate out and in (NaN: no sample), for the port analysis."""
+    known = {node.name: _nic_rates(node.nics, node.nic_values) for node in nodes}
+    out = np.full((len(names), 2), np.nan)
+    for i, name in enumerate(names):
+        rates = known.get(name, {})
+        out[i] = [math.nan if rates.get(k) is None else rates[k] for k in ("nic_out_Bps", "nic_in_Bps")]
+    return out
 
 
 def _nic_rates(nics: tuple[str, ...], values: np.ndarray) -> dict[str, float | None]:

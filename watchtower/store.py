@@ -240,12 +240,17 @@ class Store:
         sources, where = np.unique(src[keep], return_inverse=True)
         sums_bytes = np.bincount(where, nbytes[keep])
         sums_seconds = np.bincount(where, seconds[keep])
-        for source, b, t in zip(sources.tolist(), sums_bytes.tolist(), sums_seconds.tolist(), strict=True):
+        peak = np.zeros(len(sources))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            np.maximum.at(peak, where, np.where(seconds[keep] > 0, nbytes[keep] / seconds[keep], 0.0))
+        for source, b, t, fastest in zip(sources.tolist(), sums_bytes.tolist(), sums_seconds.tolist(),
+                                         peak.tolist(), strict=True):
             pair = (source, info.node)
             self._pairs.setdefault(pair, len(self._pairs))
-            cell = per_pair.setdefault(pair, [0.0, 0.0])
+            cell = per_pair.setdefault(pair, [0.0, 0.0, 0.0])
             cell[0] += b
             cell[1] += t
+            cell[2] = max(cell[2], fastest)
 
     def _merge_old_series(self) -> None:
         """Keep memory flat on long runs: fold the oldest half of the series two steps into one."""
@@ -255,10 +260,11 @@ class Store:
             self._series_step[first] = max(self._series_step[first], self._series_step.pop(second))
             links = self._series_links.pop(second, {})
             merged = self._series_links.setdefault(first, {})
-            for pair, (nbytes, seconds) in links.items():
-                cell = merged.setdefault(pair, [0.0, 0.0])
+            for pair, (nbytes, seconds, fastest) in links.items():
+                cell = merged.setdefault(pair, [0.0, 0.0, 0.0])
                 cell[0] += nbytes
                 cell[1] += seconds
+                cell[2] = max(cell[2], fastest)
 
     def _slab(self, step: int) -> _StepSlab:
         slab = self._slabs.get(step)
@@ -328,17 +334,20 @@ class Store:
         pairs = tuple(sorted(self._pairs, key=self._pairs.__getitem__))
         link_bytes = np.full((len(steps), len(pairs)), np.nan)
         link_seconds = np.full((len(steps), len(pairs)), np.nan)
+        link_peak = np.full((len(steps), len(pairs)), np.nan)
         column = {pair: i for i, pair in enumerate(pairs)}
         for i, step in enumerate(steps):
-            for pair, (nbytes, seconds) in self._series_links.get(step, {}).items():
+            for pair, (nbytes, seconds, fastest) in self._series_links.get(step, {}).items():
                 link_bytes[i, column[pair]] = nbytes
                 link_seconds[i, column[pair]] = seconds
+                link_peak[i, column[pair]] = fastest if fastest > 0 else np.nan
         return RunSeries(
             steps=np.array(steps, dtype=np.int64),
             step_s=np.array([self._series_step[s] for s in steps], dtype=np.float64),
             links=pairs,
             link_bytes=link_bytes,
             link_transfer_s=link_seconds,
+            link_peak_Bps=link_peak,
         )
 
     def totals_ns(self) -> tuple[np.ndarray, np.ndarray]:

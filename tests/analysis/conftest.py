@@ -2,12 +2,16 @@
 
 from __future__ import annotations
 
+import sys
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 import pytest
 
 from watchtower.analysis import Transfers, Window
+
+sys.path.insert(0, str(Path(__file__).parents[2] / "demo"))  # the demo's fluid model (flowsim.py)
 
 WindowBuilder = Callable[..., Window]
 
@@ -34,12 +38,16 @@ def synchronous_window(compute: np.ndarray, transfer: np.ndarray, *, ranks_per_n
 def make_transfers(step: list[int] | np.ndarray, src: list[int] | np.ndarray, dst: list[int] | np.ndarray,
                    nbytes: list[float] | np.ndarray, seconds: list[float] | np.ndarray,
                    layer: list[int] | np.ndarray | int = 0) -> Transfers:
-    """Transfers starting at 0 with unknown waits (so transfer_s is end − start)."""
+    """Transfers laid end to end, 1 ms apart, with unknown waits (so transfer_s is end − start).
+
+    No two overlap, so none shares a port with another: these windows test the fit, not concurrency."""
     n = len(step)
+    seconds = np.asarray(seconds, np.float64)
+    start = np.concatenate([[0.0], np.cumsum(seconds + 1e-3)[:-1]])
     return Transfers(
         step=np.asarray(step, np.int64), layer=np.broadcast_to(np.asarray(layer, np.int32), (n,)).copy(),
         src=np.asarray(src, np.int32), dst=np.asarray(dst, np.int32), nbytes=np.asarray(nbytes, np.int64),
-        start_s=np.zeros(n), end_s=np.asarray(seconds, np.float64), wait_s=np.full(n, np.nan))
+        start_s=start, end_s=start + seconds, wait_s=np.full(n, np.nan))
 
 
 @pytest.fixture(scope="session")

@@ -37,8 +37,10 @@ def tiny_window() -> Window:
                  (s, 2, 0, n, 1e-4 + n / 5e8), (s, 3, 1, n, 1e-4 + n / 5e8), (s, 0, 1, n, 1e-5 + n / 1e10)]
     st, src, dst, nb, secs = (np.array(col) for col in zip(*rows, strict=True))
     k = len(st)
+    # Each transfer in its own 10 s slot, so none shares a port with another (concurrency: test_ports.py).
+    start = 10.0 * np.arange(k)
     transfers = Transfers(st.astype(np.int64), np.full(k, 2, np.int32), src.astype(np.int32), dst.astype(np.int32),
-                          nb.astype(np.int64), np.zeros(k), secs, np.full(k, np.nan))
+                          nb.astype(np.int64), start, start + secs, np.full(k, np.nan))
     return Window(("a", "b", "c"), ("n0", "n1"), np.arange(4, dtype=np.int32), np.array([0, 0, 1, 1], np.int32),
                   np.arange(4, dtype=np.int64), compute, exchange, step, transfers)
 

@@ -15,7 +15,14 @@ H_SIGMA = 5.0  # Montgomery: h = 5σ with k = 0.5σ is the usual design
 WARMUP = 40  # steps that set μ0 and σ; common practice, no source
 BLOCK = 4  # steps per block median fed to the CUSUM; common practice, no source
 CLIP_SIGMA = 2.5  # largest deviation one block may add, in σ; common practice, no source
-MIN_CHANGE = 0.05  # smallest lasting change worth an alert (5% of the baseline); common practice, no source
+MIN_CHANGE = 0.05  # smallest lasting step-time change worth an alert (5 %); common practice, no source
+# A link's per-step throughput also moves when the flows sharing its ports shift in time, not only when the
+# link degrades: only a fall by a fifth or more is worth an operator's look. Common practice, no source.
+MIN_LINK_CHANGE = 0.2
+# Flows that share a port make a link's per-step rate bimodal (alone / halved), and a short warm-up then
+# puts σ near half of μ0, too wide to see even a link that lost 90 %: σ is capped at a quarter of μ0 for
+# links, so a lasting fall of 60 % or more always alarms within four blocks. Common practice, no source.
+MAX_LINK_SIGMA = 0.25
 MIN_REL_SIGMA = 0.01  # σ floor as a fraction of |μ0|: a flat warm-up (replay, synthetic) must not alarm on jitter
 
 Side = Literal["upper", "lower"]
@@ -64,6 +71,8 @@ class Alert:
     """A degradation alarm: what (``kind``), on what (``subject``), when it began and when it was seen.
 
     ``baseline`` is the warm-up median μ0, ``recent`` the median level of the blocks that raised the alarm.
+    ``port`` is the node port likely behind a link's drop ("<node> out" | "<node> in"), named afterwards
+    by ``ports.name_alert_ports``.
     """
 
     kind: str  # "link-throughput" | "step-time"
@@ -73,6 +82,7 @@ class Alert:
     baseline: float
     recent: float
     message: str
+    port: str | None = None
 
 
 def warmup_reference(x: np.ndarray, warmup: int = WARMUP) -> tuple[float, float, int] | None:
@@ -121,14 +131,16 @@ def refine_change(x: np.ndarray, mu0: float, first: int, last: int) -> int:
 
 def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, warmup: int = WARMUP, block: int = BLOCK,
                        k: float = K_SIGMA, h: float = H_SIGMA, clip: float = CLIP_SIGMA,
-                       min_change: float = MIN_CHANGE) -> tuple[Alert, ...]:
+                       min_change: float = MIN_CHANGE, min_link_change: float = MIN_LINK_CHANGE,
+                       ) -> tuple[Alert, ...]:
     """Step time rising, and each link's throughput (bytes / transfer time) falling, by a lasting amount.
 
     Each series is reduced to medians of ``block`` steps; μ0 and σ come from the first ``warmup`` steps'
     blocks; the CUSUM runs on the blocks after them, each clipped to μ0 ± ``clip``·σ so that no single
     block, however bad, alarms alone: with clip 2.5, k 0.5 and h 5 it takes three blocks in a row
     (winsorised CUSUM, after Lucas & Crosier 1982, from memory). An alarm is reported when the block after
-    it is still off by ``min_change`` or more and so is the level since the change (the median of the
+    it is still off by ``min_change`` (``min_link_change`` for a link) or more and so is the level since the
+    change (the median of the
     blocks from the refined change point to that confirming block); otherwise it was a passing burst or a
     change too small to act on, and the CUSUM restarts at the confirming block, so a later, larger change
     is still caught. The first reported alarm ends the watch on that series.
@@ -136,19 +148,20 @@ def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, warmup: int
     """
     alerts = []
     step_s = np.asarray(series.step_s, np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        rate = np.where((series.link_bytes > 0) & (series.link_transfer_s > 0),
-                        series.link_bytes / series.link_transfer_s, np.nan)
+    rate = series.link_rate()
     candidates: list[tuple[str, str, Side, np.ndarray]] = [("step-time", "step time", "upper", step_s)]
     for j, (s, d) in enumerate(series.links):
         candidates.append(("link-throughput", f"{_node(nodes, s)}→{_node(nodes, d)}", "lower", rate[:, j]))
     steps = np.asarray(series.steps)
     for kind, subject, side, x in candidates:
+        material = min_change if kind == "step-time" else min_link_change
         blocks = block_medians(x, block)
         ref = warmup_reference(blocks, max(2, warmup // block))
         if ref is None:
             continue
         mu0, sigma, start = ref
+        if kind != "step-time":
+            sigma = min(sigma, MAX_LINK_SIGMA * abs(mu0))
         while start < len(blocks):
             clipped = np.clip(blocks[start:], mu0 - clip * sigma, mu0 + clip * sigma)
             run = tabular_cusum(clipped, mu0, sigma, side=side, k=k, h=h)
@@ -160,7 +173,7 @@ def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, warmup: int
                 break  # one more block decides: a burst of hiccups passes, a change holds
             began = refine_change(blocks, mu0, start + run.began + 1, detected)
             level = float(np.nanmedian(blocks[began:confirm + 1]))
-            if abs(level / mu0 - 1.0) >= min_change and abs(blocks[confirm] / mu0 - 1.0) >= min_change:
+            if abs(level / mu0 - 1.0) >= material and abs(blocks[confirm] / mu0 - 1.0) >= material:
                 step_began, step_detected = int(steps[began * block]), int(steps[confirm * block + block - 1])
                 alerts.append(Alert(kind, subject, step_began, step_detected, mu0, level,
                                     _message(kind, subject, mu0, level, step_began)))
@@ -177,5 +190,5 @@ def _node(nodes: tuple[str, ...], index: int) -> str:
 def _message(kind: str, subject: str, baseline: float, recent: float, began: int) -> str:
     if kind == "step-time":
         return f"step time rose from {baseline:.3g} s to {recent:.3g} s, from about step {began}"
-    return (f"throughput {subject} fell from {baseline / 1e6:.4g} MB/s to {recent / 1e6:.4g} MB/s, "
-            f"from about step {began}")
+    return (f"link {subject} slowed from {baseline / 1e6:.4g} MB/s to {recent / 1e6:.4g} MB/s (its fastest "
+            f"transfer per step), from about step {began}")

@@ -13,21 +13,28 @@ import numpy as np
 
 from watchtower.analysis.efficiency import OUTLIER_Z, RELATIVE_JITTER
 from watchtower.analysis.robust import fit_hockney, modified_z
+from watchtower.analysis.sharing import bottleneck_share
 from watchtower.analysis.window import Window
 from watchtower.cluster import Cluster
 
 SLOW_FRACTION = 0.5  # common practice, no source: a link under half its nominal rate is broken, not busy
+WAITS_UNKNOWN_QUANTILE = 0.25  # per-size-bin time quantile when waiting could not be split off; no source
+WAITS_KNOWN_QUANTILE = 0.5  # the same when the probe knew when the peer was ready; no source
 
 
 @dataclass(frozen=True)
 class LinkStats:
     """One directed node pair over the window.
 
-    ``bandwidth_Bps``/``latency_s`` are the Hockney β/α (α NaN when one message size gave no slope);
-    ``throughput_Bps`` = bytes / busy time (transfer time, known waits excluded); ``utilisation`` = bytes /
-    window wall time / nominal rate. ``score`` is the modified z-score of log β within the link's class.
+    ``bandwidth_Bps``/``latency_s`` are the Hockney β/α (α NaN when one message size gave no slope), β
+    being the rate a transfer gets with the path to itself (see ``link_stats``); ``throughput_Bps`` = bytes
+    / busy time (transfer time, known waits excluded), what the link's flows actually got, shares and all;
+    ``utilisation`` = bytes / window wall time / nominal rate. ``score`` is the modified z-score of log β
+    within the link's class.
     ``hours_at_stake`` is the time the rest of the run would save if this slow link ran at its class's
-    median β (0 for links not judged slow; None without a configured total of steps).
+    median β (0 for links not judged slow; None without a configured total of steps). ``port`` names the
+    slow port that limits a slow link and ``unexplained`` marks a slow link no port explains (both set by
+    ``ports.port_stats``).
     """
 
     src: int  # node index
@@ -49,11 +56,20 @@ class LinkStats:
     reason: str  # "" | "outlier" | "below-nominal" | "outlier, below-nominal"
     saving_per_step_s: float
     hours_at_stake: float | None
+    port: str | None = None  # "<node> out" | "<node> in"
+    unexplained: bool = False
 
 
 def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps: int | None, *,
                slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
-    """All directed node pairs that carried traffic in the window, network links first, then local ones."""
+    """All directed node pairs that carried traffic in the window, network links first, then local ones.
+
+    β is fitted on each transfer's time with its byte-moving part (the time less the raw fit's α) scaled
+    by the transfer's share of its bottleneck port (``sharing.bottleneck_share``): two equal flows out of
+    one port each took twice as long as the port needs for their bytes, so the fit sees the port's rate,
+    not half of it. Latency is not shared, so α is left alone. Transfers between ranks of one node share
+    no network port and are not corrected.
+    """
     tr = window.transfers
     if len(tr) == 0 or len(window.ranks) == 0:
         return ()
@@ -68,13 +84,22 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     n_links = len(pairs)
     secs = tr.transfer_s[known]
     nbytes = np.asarray(tr.nbytes[known], np.float64)
-    fit = fit_hockney(link, nbytes, secs, n_links)
+    names = window.nodes
+    node_nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in names], np.float64)
+    unshared = _unshared(window, known, link, pairs, nbytes, secs, node_nominal)
+    fit = fit_hockney(link, nbytes, unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
+    # Where the probe split waiting off (the peer's readiness was known), what is left is two-sided noise
+    # and the odd late receiver: the bins' medians fit it without the low quartile's optimism. Where waits
+    # are unknown, waiting dominates the upper part of each bin and the low quartile is the safer choice.
+    waits_known = np.bincount(link, weights=np.isfinite(tr.wait_s[known]), minlength=n_links) >= \
+        0.5 * np.bincount(link, minlength=n_links)
+    if waits_known.any():
+        fit = fit.where(waits_known, fit_hockney(link, nbytes, unshared, n_links, quantile=WAITS_KNOWN_QUANTILE))
     total_bytes = np.bincount(link, weights=nbytes, minlength=n_links)
     busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_links)
     count = np.bincount(link, minlength=n_links)
     src, dst = pairs // n_nodes, pairs % n_nodes
     local = src == dst
-    names = window.nodes
     classes = [cluster.link_class(names[s], names[d]) for s, d in zip(src, dst, strict=True)]
     nominal = [None if lo else cluster.link_nominal_Bps(names[s], names[d])
                for s, d, lo in zip(src, dst, local, strict=True)]
@@ -95,8 +120,9 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     nominal_arr = np.array([np.nan if v is None else v for v in nominal], dtype=np.float64)
     below = (fit.sizes >= 2) & (beta < slow_fraction * nominal_arr)
 
-    slow = outlier | below
-    shrink = np.where(slow, _shrink(beta, median_beta, local), 0.0)  # only slow links put hours at stake
+    # Every network link's possible saving: a link found slow later (through the port that limits it) needs
+    # it too; only slow links' hours are added up as at stake.
+    shrink = _shrink(beta, median_beta, local)
     saving = _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps), len(window.ranks))
     out = []
     for i in np.argsort(local, kind="stable"):
@@ -113,6 +139,23 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
             hours_at_stake=None if remaining_steps is None else remaining_steps * float(saving[i]) / 3600.0,
         ))
     return tuple(out)
+
+
+def _unshared(window: Window, known: np.ndarray, link: np.ndarray, pairs: np.ndarray, nbytes: np.ndarray,
+              secs: np.ndarray, node_nominal: np.ndarray) -> np.ndarray:
+    """Transfer times as if each network transfer had had its bottleneck port to itself."""
+    n_nodes, n_links = len(window.nodes), len(pairs)
+    src, dst = pairs[link] // n_nodes, pairs[link] % n_nodes
+    lo = (window.transfers.start_s + np.nan_to_num(window.transfers.wait_s, nan=0.0))[known]
+    moving = (src != dst) & (secs > 0) & (nbytes > 0) & np.isfinite(secs) & np.isfinite(lo)
+    if not moving.any():
+        return secs
+    share = bottleneck_share(src[moving], dst[moving], lo[moving], lo[moving] + secs[moving], nbytes[moving],
+                             node_nominal)
+    alpha = np.nan_to_num(fit_hockney(link, nbytes, secs, n_links).alpha_s, nan=0.0)[link[moving]]
+    out = secs.copy()
+    out[moving] = np.minimum(alpha, secs[moving]) + share * np.maximum(secs[moving] - alpha, 0.0)
+    return out
 
 
 def _shrink(beta: np.ndarray, median_beta: np.ndarray, local: np.ndarray) -> np.ndarray:

@@ -49,6 +49,12 @@ class HockneyFit:
     beta_Bps: np.ndarray
     sizes: np.ndarray  # int64, size bins used
 
+    def where(self, choose_other: np.ndarray, other: HockneyFit) -> HockneyFit:
+        """Per group, this fit or ``other`` where ``choose_other`` is true."""
+        return HockneyFit(np.where(choose_other, other.alpha_s, self.alpha_s),
+                          np.where(choose_other, other.beta_Bps, self.beta_Bps),
+                          np.where(choose_other, other.sizes, self.sizes))
+
 
 def hockney_lstsq(nbytes: np.ndarray, seconds: np.ndarray, weights: np.ndarray | None = None) -> tuple[float, float]:
     """Plain (weighted) least squares of t = α + n/β for one link: returns (α, β).

@@ -26,6 +26,7 @@ from watchtower.analysis.efficiency import (
 )
 from watchtower.analysis.links import SLOW_FRACTION, LinkStats, link_stats
 from watchtower.analysis.models import StepModel, eta_s, remaining_steps, step_model
+from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
@@ -57,6 +58,7 @@ class Analysis:
     speedup: Speedup
     layers: LayerStats
     links: tuple[LinkStats, ...]  # network links first, then node-local ones
+    ports: tuple[PortStats, ...]  # by node, out before in
     stragglers: tuple[Straggler, ...]
     alerts: tuple[Alert, ...]
     step_s: float  # mean step wall time over the window
@@ -74,12 +76,13 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             warmup: int = WARMUP, recent: int = RECENT_STEPS, runs: Sequence[tuple[int, float]] = (),
             scenarios: Sequence[tuple[str, float, float, float]] = (
                 ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
-            ) -> Analysis:
+            nic_Bps: np.ndarray | None = None) -> Analysis:
     """Analyse a window (and the run's series, when there is one) against the cluster's configuration.
 
     ``runs`` are (p, S) of earlier runs at other sizes, for the Karp–Flatt serial fraction; this window's
     (p, S) is added to them (no serial fraction while all runs have one size). ``scenarios`` are
-    (label, bandwidth ×, latency ÷, ranks ×) what-ifs.
+    (label, bandwidth ×, latency ÷, ranks ×) what-ifs. ``nic_Bps`` (float64 [N, 2], NaN: unknown) is each
+    window node's NIC-counter rate out and in, the second witness of port capacity.
     """
     sums = reduce_window(window)
     eff = pop_efficiency(window, sums)
@@ -95,6 +98,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     remaining = remaining_steps(cluster.total_steps, last_step)
 
     links = link_stats(window, cluster, eff.wall_s, remaining, slow_fraction=slow_fraction)
+    ports, links = port_stats(links, window.nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+    alerts = degradation_alerts(series, window.nodes, warmup=warmup) if series is not None else ()
     net = [lk for lk in links if not lk.local]
     at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in net if lk.slow)
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
@@ -109,9 +114,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         first_step=int(window.steps[0]) if len(window.steps) else -1,
         last_step=int(window.steps[-1]) if len(window.steps) else -1,
         steps=len(window.steps), nodes=window.nodes, efficiency=eff, speedup=speedup,
-        layers=layer_stats(window, sums, threshold), links=links,
-        stragglers=find_stragglers(window, eff),
-        alerts=degradation_alerts(series, window.nodes, warmup=warmup) if series is not None else (),
+        layers=layer_stats(window, sums, threshold), links=links, ports=ports,
+        stragglers=find_stragglers(window, eff), alerts=name_alert_ports(alerts, links),
         step_s=step_s, recent_step_s=recent_step_s, remaining_steps=remaining,
         eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake, model=model, whatif=whatif,
         serial_fraction=serial,
@@ -153,10 +157,38 @@ HOW: dict[str, tuple[str, str]] = {
     "layers.comm_fraction": ("E / (C + E) of the mean rank, summed over the window", "definition"),
     "layers.comm_fraction_worst": ("highest E / (C + E) of any single rank", "definition"),
     "layers.comm_bound": ("comm fraction above the threshold (default 0.5)", "common practice, no source"),
-    "links.bandwidth_Bps": ("β of t(n) = α + n/β, least squares through the 25 % quantile of each size bin",
-                            "Hockney (1994)"),
+    "links.bandwidth_Bps": ("β of t(n) = α + n/β, least squares through each size bin's median time (its 25 % "
+                            "quantile when most waits are unknown), "
+                            "fitted on times with the byte-moving part (time − α) × the transfer's share of its "
+                            "bottleneck port: the rate with the path to itself, not a concurrent flow's share",
+                            "Hockney (1994); share: see links.concurrency"),
+    "links.concurrency": ("share = the transfer's bytes / bytes its port moved while it ran (flows at uniform "
+                          "rate over [start + wait, end]); its bottleneck is a port that was full (≥ 60 % of "
+                          "the port's busy level, the time-weighted 90 % quantile of its aggregate rate) where "
+                          "the transfer had its fair share (≥ 60 % of the mean rate of the port's flows); both "
+                          "ports: the one that moved more bytes; neither: share 1. A flow limited elsewhere "
+                          "keeps its own rate",
+                          "bottleneck of max-min fairness: Bertsekas & Gallager, Data Networks, §6.5; "
+                          "60 %, 90 %: common practice, no source"),
+    "links.port": ("the slow port at either end that limits a slow link (link β ≥ 75 % of the port's capacity), "
+                   "the slower if both; null with unexplained = true when no slow port does (the path "
+                   "between them, a blocking switch, or the pair itself)", "definition; 75 %: no source"),
     "links.latency_s": ("α of t(n) = α + n/β (none when only one message size was seen)", "Hockney (1994)"),
-    "links.throughput_Bps": ("bytes / time spent transferring (known waits excluded)", "plain ratio"),
+    "links.throughput_Bps": ("bytes / time spent transferring (known waits excluded), shares and all",
+                             "plain ratio"),
+    "ports.capacity_Bps": ("highest β of the network links through the port (a pair's path is limited by the "
+                           "sender's way out and the receiver's way in; the switch is taken as non-blocking)",
+                           "definition; β as links.bandwidth_Bps"),
+    "ports.lower_bound": ("every link through the port runs at the capacity of its other end (within 2 %), so "
+                          "the port's own limit was never seen: capacity is a lower bound, never judged slow",
+                          "definition; 2 %: common practice, no source"),
+    "ports.score": ("modified z-score 0.6745 (x − median) / MAD of log capacity among ports of the same "
+                    "direction and node group", "Iglewicz & Hoaglin (1993)"),
+    "ports.slow": ("score < −3.5, or capacity below the set fraction (default 0.5) of the node's nominal rate",
+                   "Iglewicz & Hoaglin (1993); fraction: common practice, no source"),
+    "ports.nic_Bps": ("the node's NIC-counter rate in that direction (psutil, loopback excluded); nic_disagrees "
+                      "when it exceeds capacity by more than 10 %: unseen traffic shares the port",
+                      "measured; 10 % margin for headers: common practice, no source"),
     "links.utilisation": ("bytes / window wall time / nominal rate (lower of the two NICs)", "plain ratio"),
     "links.score": ("modified z-score 0.6745 (x − median) / MAD of log β among links of the same class",
                     "Iglewicz & Hoaglin (1993)"),
@@ -167,9 +199,13 @@ HOW: dict[str, tuple[str, str]] = {
                              "model above"),
     "stragglers": ("ranks whose modified z-score of log compute exceeds +3.5", "Iglewicz & Hoaglin (1993)"),
     "alerts": ("one-sided tabular CUSUM, k = 0.5σ, h = 5σ, on medians of 4-step blocks clipped to μ0 ± 2.5σ "
-               "(μ0, σ = median, 1.4826·MAD of the first 40 steps); step time upward, link throughput downward; "
-               "reported when the next block confirms a change of 5 % or more; began = least-squares change "
-               "point", "Page (1954); Montgomery, SQC; block, clip and 5 %: common practice, no source"),
+               "(μ0, σ = median, 1.4826·MAD of the first 40 steps; for a link σ ≤ μ0/4); step time upward, "
+               "each link's fastest transfer per step downward; "
+               "reported when the next block confirms a change of 5 % or more (20 % for a link); began = "
+               "least-squares change "
+               "point; port: the one explaining the link, else the sender's way out when all its links "
+               "dropped, else the receiver's way in likewise",
+               "Page (1954); Montgomery, SQC; block, clip and 5 %: common practice, no source"),
     "eta_s": ("remaining steps × mean step time of the recent steps", "plain product"),
     "hours_at_stake": ("sum of hours at stake over the slow links", "model above"),
     "whatif": ("compute path × p/p' + unexplained time + modelled collectives (cheapest of ring, recursive "
@@ -211,12 +247,17 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
             for i, name in enumerate(lay.names)],
         "comm_bound_threshold": lay.threshold,
         "links": [_link_json(lk) for lk in net],
+        "ports": [{"node": p.node_name, "direction": p.direction, "capacity_Bps": _f(p.capacity_Bps),
+                   "slow": p.slow, "reason": p.reason, "score": _f(p.score),
+                   "explains": [list(pair) for pair in p.explains], "links": p.links, "lower_bound": p.lower_bound,
+                   "nominal_Bps": _f(p.nominal_Bps), "nic_Bps": _f(p.nic_Bps), "nic_disagrees": p.nic_disagrees}
+                  for p in a.ports],
         "local_links": [_link_json(lk) for lk in local],
         "stragglers": [{"rank": st.rank, "node": st.node, "compute_s": _f(st.compute_s), "score": _f(st.score)}
                        for st in a.stragglers],
         "alerts": [{"kind": al.kind, "subject": al.subject, "step_began": al.step_began,
                     "step_detected": al.step_detected, "baseline": _f(al.baseline), "recent": _f(al.recent),
-                    "message": al.message} for al in a.alerts],
+                    "message": al.message, "port": al.port} for al in a.alerts],
         "recent_step_s": _f(a.recent_step_s),
         "remaining_steps": a.remaining_steps,
         "eta_s": _f(a.eta_s),
@@ -238,7 +279,7 @@ def _link_json(lk: LinkStats) -> dict[str, Any]:
             "transfers": lk.transfers, "bandwidth_Bps": _f(lk.bandwidth_Bps), "latency_s": _f(lk.latency_s),
             "throughput_Bps": _f(lk.throughput_Bps), "nominal_Bps": _f(lk.nominal_Bps),
             "utilisation": _f(lk.utilisation), "slow": lk.slow, "reason": lk.reason, "score": _f(lk.score),
-            "hours_at_stake": _f(lk.hours_at_stake)}
+            "hours_at_stake": _f(lk.hours_at_stake), "port": lk.port, "unexplained": lk.unexplained}
 
 
 def compare(a: Analysis | dict[str, Any], b: Analysis | dict[str, Any]) -> dict[str, Any]:

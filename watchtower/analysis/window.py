@@ -121,3 +121,16 @@ class RunSeries:
     links: tuple[tuple[int, int], ...]  # P pairs of node indices
     link_bytes: np.ndarray  # float64 [S, P]
     link_transfer_s: np.ndarray  # float64 [S, P]
+    link_peak_Bps: np.ndarray | None = None  # float64 [S, P]: the step's fastest transfer on the pair
+
+    def link_rate(self) -> np.ndarray:
+        """Per step and pair, the rate to watch for degradation (NaN where the pair moved nothing).
+
+        The fastest transfer of the step when known: a pair's throughput also falls when its transfers
+        happen to share a port with others more often, which is no fault of the link; its fastest transfer,
+        usually one that had the path to itself, falls only when the path got slower."""
+        if self.link_peak_Bps is not None:
+            return self.link_peak_Bps
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where((self.link_bytes > 0) & (self.link_transfer_s > 0),
+                            self.link_bytes / self.link_transfer_s, np.nan)

@@ -1,0 +1,79 @@
+"""A link degrades part-way through a run: every node starts at the fabric rate (400 Mb/s); once all ranks
+have finished step CHANGE_AFTER (read from the collector's own recording, not guessed from a clock), node1's
+egress token bucket is replaced by a 40 Mb/s one. The report must raise alerts that begin at the change and
+are detected soon after it, and none on links the change did not touch.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pytest
+from netns_cluster import Job, NetnsCluster, recorded_steps, wait_until
+from netns_helpers import report, run_job, tc_rate
+
+pytestmark = pytest.mark.netns
+
+FABRIC_BPS = 400e6
+SLOW_BPS = 40e6
+SLOW = "node1"
+CHANGE_AFTER = 47  # the alerts' warm-up is the first 40 steps: it must end before the change
+JOB = Job(steps=72, layers=8, exchange_bytes=262_144, compute_ms=5.0, seed=3)  # ~6 s fast, then ~17 s slow
+# The alerts work on medians of 4-step blocks (step_began is a block's first step), so "at the change" means
+# within one block of it; detection needs three blocks over the limit and one confirming block, so it comes
+# within five blocks (20 steps) of the change.
+BEGAN_TOLERANCE = 4
+DETECTED_WITHIN = 20
+REACH_TIMEOUT_S = 60.0
+
+
+@pytest.fixture(scope="module")
+def change(netns_cluster: NetnsCluster, tmp_path_factory: pytest.TempPathFactory) -> tuple[int, dict[str, Any]]:
+    """(first step that may have run at the new rate, the report of the whole run)."""
+    for node in netns_cluster.nodes:
+        netns_cluster.shape(node, tc_rate(FABRIC_BPS))
+    clean: list[int] = []
+
+    def degrade(recording: Path) -> None:
+        def reached() -> bool:
+            steps = recorded_steps(recording)
+            return len(steps) == len(netns_cluster.nodes) and min(steps.values()) >= CHANGE_AFTER
+
+        wait_until(reached, REACH_TIMEOUT_S, f"every rank recording step {CHANGE_AFTER}")
+        # Every rank had finished the steps up to this minimum before the rate changed.
+        clean.append(min(recorded_steps(recording).values()))
+        netns_cluster.shape(SLOW, tc_rate(SLOW_BPS))  # tc qdisc replace: changes the running bucket
+
+    recording = run_job(netns_cluster, JOB, Path(tmp_path_factory.mktemp("degradation")), during=degrade)
+    return clean[0] + 1, report(recording)
+
+
+def _alerts(snapshot: dict[str, Any], kind: str) -> dict[str, dict[str, Any]]:
+    return {alert["subject"]: alert for alert in snapshot["alerts"] if alert["kind"] == kind}
+
+
+def _check_timing(alert: dict[str, Any], first_changed: int) -> None:
+    assert abs(alert["step_began"] - first_changed) <= BEGAN_TOLERANCE, (alert, first_changed)
+    assert first_changed <= alert["step_detected"] <= first_changed + DETECTED_WITHIN, (alert, first_changed)
+
+
+def test_the_degraded_links_alert_at_the_change(change: tuple[int, dict[str, Any]]) -> None:
+    first_changed, snapshot = change
+    throughput = _alerts(snapshot, "link-throughput")
+    for subject in (f"{SLOW}→node0", f"{SLOW}→node2"):
+        assert subject in throughput, snapshot["alerts"]
+        _check_timing(throughput[subject], first_changed)
+
+
+def test_step_time_alerts_at_the_change(change: tuple[int, dict[str, Any]]) -> None:
+    first_changed, snapshot = change
+    step_time = _alerts(snapshot, "step-time")
+    assert "step time" in step_time, snapshot["alerts"]
+    _check_timing(step_time["step time"], first_changed)
+
+
+def test_no_alert_on_links_the_change_did_not_touch(change: tuple[int, dict[str, Any]]) -> None:
+    _, snapshot = change
+    untouched = set(_alerts(snapshot, "link-throughput")) - {f"{SLOW}→node0", f"{SLOW}→node2"}
+    assert not untouched, snapshot["alerts"]
