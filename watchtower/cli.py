@@ -13,7 +13,7 @@ import sys
 import threading
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import NoReturn
+from typing import TYPE_CHECKING, NoReturn
 
 from watchtower.cluster import Cluster, ClusterConfigError, load_cluster
 from watchtower.collector import Collector, Endpoint, EndpointError, parse_endpoint
@@ -22,6 +22,9 @@ from watchtower.errors import UsageError, WatchtowerError
 from watchtower.ingest import Ingest
 from watchtower.keys import HeadKeys, load_head
 from watchtower.recording import NotARecording, Recorder, RecordingError
+
+if TYPE_CHECKING:
+    from watchtower.metrics import MetricsServer
 
 PROG = "watchtower"
 KEYS_ENV = "WATCHTOWER_KEYS"  # the key folder when --dir is not given
@@ -61,6 +64,7 @@ def build_parser() -> argparse.ArgumentParser:
                          help="allow listening beyond loopback without keys (shown as a standing warning)")
     collect.add_argument("--keys", type=Path, metavar="DIR",
                          help="key folder (watchtower keys init): encrypt, and accept only listed agents")
+    _metrics_option(collect)
     collect.set_defaults(run=_collect)
 
     watch = commands.add_parser("watch", help="the console: attach to a running collect, or collect in-process")
@@ -71,6 +75,7 @@ def build_parser() -> argparse.ArgumentParser:
                        help="with --listen: allow listening beyond loopback without keys")
     watch.add_argument("--keys", type=Path, metavar="DIR",
                        help="with --listen: key folder; encrypt, and accept only listed agents")
+    _metrics_option(watch)
     _console_options(watch)
     watch.set_defaults(run=_watch)
 
@@ -107,11 +112,42 @@ def build_parser() -> argparse.ArgumentParser:
                        help=f"key folder (default: ${KEYS_ENV}, else {DEFAULT_KEYS})")
     agent.set_defaults(run=_keys_agent)
 
+    relay = commands.add_parser("relay", help="a rack relay: agents connect here, one uplink to the collector")
+    relay.add_argument("--listen", default="tcp://127.0.0.1:5556", help="endpoint to bind (default %(default)s)")
+    relay.add_argument("--collector", required=True, metavar="ENDPOINT",
+                       help="where to forward: the collector's endpoint, or a higher relay's")
+    relay.add_argument("--insecure", action="store_true",
+                       help="allow listening beyond loopback without keys")
+    relay.add_argument("--keys", type=Path, metavar="DIR",
+                       help="the head's key folder: encrypt the listener, and accept only listed agents")
+    relay.add_argument("--uplink-key", metavar="AGENT_SECRET_FILE",
+                       help="this relay's own agent secret key file, for an uplink to a collector with keys")
+    relay.add_argument("--server-key", metavar="FILE", help="the collector's public key file; goes with --uplink-key")
+    relay.add_argument("--duration", type=_positive(float), help="stop after this many seconds")
+    relay.set_defaults(run=_relay)
+
     merge = commands.add_parser("merge", help="join agents' spools and the head's recording into one trace")
     merge.add_argument("out", type=Path, metavar="OUT", help="the merged recording to write (must not exist)")
     merge.add_argument("inputs", type=Path, nargs="+", metavar="IN", help="recordings and spools")
     merge.set_defaults(run=_merge)
     return parser
+
+
+def _metrics_option(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--metrics", metavar="HOST:PORT",
+                        help="serve the job's figures for scraping (OpenMetrics) here; PORT alone binds loopback")
+
+
+def _metrics(text: str | None) -> MetricsServer | None:
+    """Start the metrics endpoint early, so a bad address is one line before anything else starts."""
+    if text is None:
+        return None
+    from watchtower.metrics import MetricsAddressError, MetricsServer, parse_address
+
+    try:
+        return MetricsServer(parse_address(text))
+    except MetricsAddressError as exc:
+        raise UsageError(str(exc)) from None
 
 
 def _console_options(parser: argparse.ArgumentParser) -> None:
@@ -172,10 +208,18 @@ def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: Hea
         raise UsageError(str(exc)) from None
 
 
-def _run_console(feed: Feed) -> int:
+def _run_console(feed: Feed, metrics: MetricsServer | None = None) -> int:
     from watchtower.console import ConsoleApp
 
-    ConsoleApp(feed).run()
+    if metrics is not None:
+        from watchtower.metrics import PublishingFeed
+
+        feed = PublishingFeed(feed, metrics.metrics)
+    try:
+        ConsoleApp(feed).run()
+    finally:
+        if metrics is not None:
+            metrics.close()
     return 0
 
 
@@ -186,11 +230,17 @@ def _watch(args: argparse.Namespace) -> int:
     cluster = _cluster(args.cluster)
     if args.listen:
         security, keys = _listen(args.listen, args.insecure, args.keys)
-        recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
-                                                                             "listen": args.listen})
-        feed: Feed = LiveFeed(_collector(args.listen, Ingest(), recorder, keys), cluster=cluster,
-                              security=security, window_steps=args.window)
-        return _run_console(feed)
+        metrics = _metrics(args.metrics)
+        try:
+            recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
+                                                                                 "listen": args.listen})
+            collector = _collector(args.listen, Ingest(), recorder, keys)
+        except UsageError:
+            if metrics is not None:
+                metrics.close()
+            raise
+        feed: Feed = LiveFeed(collector, cluster=cluster, security=security, window_steps=args.window)
+        return _run_console(feed, metrics)
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
     if args.follow is not None:
@@ -205,7 +255,7 @@ def _watch(args: argparse.Namespace) -> int:
         feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window)
     except (OSError, RecordingError) as exc:
         raise UsageError(f"cannot follow {recording}: {exc}") from None
-    return _run_console(feed)
+    return _run_console(feed, _metrics(args.metrics))
 
 
 def _replay(args: argparse.Namespace) -> int:
@@ -230,22 +280,79 @@ def _collect(args: argparse.Namespace) -> int:
     from watchtower.attach import Beacon
 
     security, keys = _listen(args.listen, args.insecure, args.keys)
-    recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
-    ingest = Ingest()
-    collector = _collector(args.listen, ingest, recorder, keys)
+    metrics = _metrics(args.metrics)
+    try:
+        recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
+        ingest = Ingest()
+        collector = _collector(args.listen, ingest, recorder, keys)
+    except UsageError:
+        if metrics is not None:
+            metrics.close()
+        raise
     beacon = Beacon({"recording": str(args.record.resolve()), "listen": collector.bound, "security": security})
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
+    tick = None
+    if metrics is not None:
+        tick = _snapshot_tick(ingest, collector.bound, security, metrics)
+        print(f"{PROG} collect: metrics on {metrics.url}", file=sys.stderr, flush=True)
     try:
-        collector.run(stop, args.duration, beacon)
+        collector.run(stop, args.duration, beacon, tick)
     finally:
         beacon.close()
         collector.close()
+        if metrics is not None:
+            metrics.close()
     loss = ingest.ledger
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
           f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
           f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    return 0
+
+
+def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
+                   metrics: MetricsServer) -> Callable[[], None]:
+    """For headless `collect`: a snapshot for the metrics every few seconds, built in the collector's loop."""
+    from watchtower.metrics import COLLECT_PERIOD_S, Every
+    from watchtower.snapshot import build_snapshot
+
+    cluster = Cluster.default()
+
+    def publish() -> None:
+        metrics.metrics.update(build_snapshot(ingest, cluster, source={"kind": "live", "where": bound},
+                                              security=security))
+
+    return Every(COLLECT_PERIOD_S, publish)
+
+
+def _relay(args: argparse.Namespace) -> int:
+    from agent.keys import KeyFileError, curve_keys
+    from watchtower.relay import Relay
+
+    _, keys = _listen(args.listen, args.insecure, args.keys)
+    try:
+        parse_endpoint(args.collector, binding=False)
+    except EndpointError as exc:
+        raise UsageError(str(exc)) from None
+    if (args.uplink_key is None) != (args.server_key is None):
+        raise UsageError("--uplink-key and --server-key go together")
+    try:
+        uplink = None if args.uplink_key is None else curve_keys(args.uplink_key, args.server_key)
+    except KeyFileError as exc:
+        raise UsageError(str(exc)) from None
+    try:
+        relay = Relay(args.listen, args.collector, keys=keys, uplink_keys=uplink)
+    except EndpointError as exc:
+        raise UsageError(str(exc)) from None
+    stop = threading.Event()
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(signum, lambda *_: stop.set())
+    print(f"{PROG} relay: {relay.bound} -> {args.collector}", file=sys.stderr, flush=True)
+    try:
+        relay.serve(stop, args.duration)
+    finally:
+        relay.close()
     return 0
 
 

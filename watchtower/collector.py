@@ -188,8 +188,11 @@ class Collector:
             self.socket.send_multipart([*envelope, *pong], flags=zmq.NOBLOCK)
 
     def run(self, stop: threading.Event, duration_s: float | None = None,
-            beacon: Beacon | None = None) -> None:
-        """Collect until ``stop`` is set or ``duration_s`` has passed, answering ``beacon`` queries too."""
+            beacon: Beacon | None = None, tick: Callable[[], None] | None = None) -> None:
+        """Collect until ``stop`` is set or ``duration_s`` has passed, answering ``beacon`` queries too.
+
+        ``tick`` is called between drains (at least every 100 ms), off the receive path: for work such as
+        building a snapshot for the metrics, which must not run on another thread while the store changes."""
         deadline = None if duration_s is None else time.monotonic() + duration_s
         while not stop.is_set():
             timeout = 100
@@ -201,6 +204,8 @@ class Collector:
             if beacon is not None:
                 beacon.answer()
             self.drain(timeout)
+            if tick is not None:
+                tick()
 
     def close(self) -> None:
         self._close_sockets()

@@ -49,7 +49,9 @@ def build_snapshot(
     meta = meta or {}
     window = store.window(last=window_steps)
     series = store.series()
-    snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes)))
+    history = window if window_steps is None else store.window()  # every step still held, for degradation
+    snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes),
+                                        history=history))
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)

@@ -347,7 +347,7 @@ class Store:
             links=pairs,
             link_bytes=link_bytes,
             link_transfer_s=link_seconds,
-            link_peak_Bps=link_peak,
+            link_watch_Bps=link_peak,
         )
 
     def totals_ns(self) -> tuple[np.ndarray, np.ndarray]:

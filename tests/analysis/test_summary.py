@@ -112,3 +112,13 @@ def test_window_where_nobody_reported() -> None:
     assert out["efficiency"]["parallel"] is None
     assert out["layers"][0]["comm_fraction"] is None and out["layers"][0]["comm_bound"] is False
     json.dumps(out, allow_nan=False)
+
+
+
+@pytest.mark.parametrize("shape", [(0, 0, 0), (3, 0, 2), (0, 2, 2)])
+def test_empty_history_watches_nothing(shape: tuple[int, int, int]) -> None:
+    s, r, n_layers = shape
+    w = Window(tuple(f"l{i}" for i in range(n_layers)), ("n0",), np.arange(r, dtype=np.int32), np.zeros(r, np.int32),
+               np.arange(s), np.zeros(shape), np.zeros(shape), np.ones((s, r)))
+    series = RunSeries(np.arange(3), np.ones(3), (), np.zeros((3, 0)), np.zeros((3, 0)))
+    assert analyse(w, series, Cluster.default(), history=w).alerts == ()

@@ -16,9 +16,10 @@ WARMUP = 40  # steps that set μ0 and σ; common practice, no source
 BLOCK = 4  # steps per block median fed to the CUSUM; common practice, no source
 CLIP_SIGMA = 2.5  # largest deviation one block may add, in σ; common practice, no source
 MIN_CHANGE = 0.05  # smallest lasting step-time change worth an alert (5 %); common practice, no source
-# A link's per-step throughput also moves when the flows sharing its ports shift in time, not only when the
-# link degrades: only a fall by a fifth or more is worth an operator's look. Common practice, no source.
-MIN_LINK_CHANGE = 0.2
+# A link's per-step rate also moves when the flows sharing its ports shift in time (the correction for
+# sharing is approximate), not only when the link degrades: only a fall by 40 % or more is worth an
+# operator's look. Common practice, no source.
+MIN_LINK_CHANGE = 0.4
 # Flows that share a port make a link's per-step rate bimodal (alone / halved), and a short warm-up then
 # puts σ near half of μ0, too wide to see even a link that lost 90 %: σ is capped at a quarter of μ0 for
 # links, so a lasting fall of 60 % or more always alarms within four blocks. Common practice, no source.
@@ -129,11 +130,15 @@ def refine_change(x: np.ndarray, mu0: float, first: int, last: int) -> int:
     return best
 
 
-def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, warmup: int = WARMUP, block: int = BLOCK,
+def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, links: RunSeries | None = None,
+                       warmup: int = WARMUP, block: int = BLOCK,
                        k: float = K_SIGMA, h: float = H_SIGMA, clip: float = CLIP_SIGMA,
                        min_change: float = MIN_CHANGE, min_link_change: float = MIN_LINK_CHANGE,
                        ) -> tuple[Alert, ...]:
-    """Step time rising, and each link's throughput (bytes / transfer time) falling, by a lasting amount.
+    """Step time rising, and each link's rate (``RunSeries.link_rate``) falling, by a lasting amount.
+
+    Link rates come from ``links`` when given (the analysis's sharing-corrected series over the steps it
+    still holds), else from ``series``.
 
     Each series is reduced to medians of ``block`` steps; μ0 and σ come from the first ``warmup`` steps'
     blocks; the CUSUM runs on the blocks after them, each clipped to μ0 ± ``clip``·σ so that no single
@@ -147,13 +152,14 @@ def degradation_alerts(series: RunSeries, nodes: tuple[str, ...], *, warmup: int
     Steps in which a link moved nothing are NaN and skipped.
     """
     alerts = []
-    step_s = np.asarray(series.step_s, np.float64)
-    rate = series.link_rate()
-    candidates: list[tuple[str, str, Side, np.ndarray]] = [("step-time", "step time", "upper", step_s)]
-    for j, (s, d) in enumerate(series.links):
-        candidates.append(("link-throughput", f"{_node(nodes, s)}→{_node(nodes, d)}", "lower", rate[:, j]))
-    steps = np.asarray(series.steps)
-    for kind, subject, side, x in candidates:
+    link_series = series if links is None else links
+    rate = link_series.link_rate()
+    candidates: list[tuple[str, str, Side, np.ndarray, np.ndarray]] = [
+        ("step-time", "step time", "upper", np.asarray(series.step_s, np.float64), np.asarray(series.steps))]
+    for j, (s, d) in enumerate(link_series.links):
+        candidates.append(("link-throughput", f"{_node(nodes, s)}→{_node(nodes, d)}", "lower", rate[:, j],
+                           np.asarray(link_series.steps)))
+    for kind, subject, side, x, steps in candidates:
         material = min_change if kind == "step-time" else min_link_change
         blocks = block_medians(x, block)
         ref = warmup_reference(blocks, max(2, warmup // block))
@@ -190,5 +196,4 @@ def _node(nodes: tuple[str, ...], index: int) -> str:
 def _message(kind: str, subject: str, baseline: float, recent: float, began: int) -> str:
     if kind == "step-time":
         return f"step time rose from {baseline:.3g} s to {recent:.3g} s, from about step {began}"
-    return (f"link {subject} slowed from {baseline / 1e6:.4g} MB/s to {recent / 1e6:.4g} MB/s (its fastest "
-            f"transfer per step), from about step {began}")
+    return f"link {subject} slowed from {baseline / 1e6:.4g} MB/s to {recent / 1e6:.4g} MB/s, from about step {began}"

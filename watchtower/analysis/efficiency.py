@@ -14,6 +14,9 @@ from watchtower.analysis.window import Window
 
 OUTLIER_Z = 3.5  # Iglewicz & Hoaglin (1993): |M| > 3.5 is a potential outlier
 RELATIVE_JITTER = 0.02  # common practice, no source: spreads under ~2 % are timer and clock jitter
+# Far below its peers: under a third of the median of its class is slow whatever the spread of the class,
+# which a few noisy fast members can widen enough to hide a tenfold gap from the z-score. No source.
+FAR_BELOW_PEERS = 1 / 3
 
 
 @dataclass(frozen=True)

@@ -11,10 +11,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from watchtower.analysis.efficiency import OUTLIER_Z, RELATIVE_JITTER
+from watchtower.analysis.efficiency import FAR_BELOW_PEERS, OUTLIER_Z, RELATIVE_JITTER
 from watchtower.analysis.robust import fit_hockney, modified_z
 from watchtower.analysis.sharing import bottleneck_share
-from watchtower.analysis.window import Window
+from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
 SLOW_FRACTION = 0.5  # common practice, no source: a link under half its nominal rate is broken, not busy
@@ -73,20 +73,11 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     tr = window.transfers
     if len(tr) == 0 or len(window.ranks) == 0:
         return ()
-    si, src_ok = window.rank_index(tr.src)
-    di, dst_ok = window.rank_index(tr.dst)
-    step_idx, step_ok = window.step_index(tr.step)
-    known = src_ok & dst_ok & step_ok
-    si, di, step_idx = si[known], di[known], step_idx[known]
-    n_nodes = len(window.nodes)
-    rank_node = np.asarray(window.rank_node, np.int64)
-    pairs, link = np.unique(rank_node[si] * n_nodes + rank_node[di], return_inverse=True)
-    n_links = len(pairs)
-    secs = tr.transfer_s[known]
-    nbytes = np.asarray(tr.nbytes[known], np.float64)
-    names = window.nodes
-    node_nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in names], np.float64)
-    unshared = _unshared(window, known, link, pairs, nbytes, secs, node_nominal)
+    paired = _pair_transfers(window, cluster)
+    known, di, step_idx = paired.known, paired.dst_index, paired.step_index
+    link, pairs, n_links = paired.link, paired.pairs, len(paired.pairs)
+    secs, nbytes, unshared = paired.seconds, paired.nbytes, paired.unshared
+    n_nodes, names = len(window.nodes), window.nodes
     fit = fit_hockney(link, nbytes, unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
     # Where the probe split waiting off (the peer's readiness was known), what is left is two-sided noise
     # and the odd late receiver: the bins' medians fit it without the low quartile's optimism. Where waits
@@ -114,7 +105,11 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
         with np.errstate(divide="ignore", invalid="ignore"):
             score[members] = modified_z(np.log(beta[members]), min_scale=RELATIVE_JITTER)
         median_beta[members] = np.nanmedian(beta[members]) if np.isfinite(beta[members]).any() else np.nan
-    outlier = np.nan_to_num(score, nan=0.0) < threshold
+    class_of = np.unique(classes, return_inverse=True)[1]
+    class_size = np.bincount(class_of, weights=~local)[class_of]
+    with np.errstate(invalid="ignore"):
+        far_below = (beta < FAR_BELOW_PEERS * median_beta) & (class_size >= 3)
+    outlier = (np.nan_to_num(score, nan=0.0) < threshold) | far_below
     # Only a true two-point fit gives an asymptotic β comparable with a NIC rate; the effective rate of one
     # small message size is mostly latency and would always look "below nominal".
     nominal_arr = np.array([np.nan if v is None else v for v in nominal], dtype=np.float64)
@@ -139,6 +134,72 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
             hours_at_stake=None if remaining_steps is None else remaining_steps * float(saving[i]) / 3600.0,
         ))
     return tuple(out)
+
+
+@dataclass(frozen=True)
+class _Paired:
+    """The window's transfers between known ranks, each with its directed node pair and unshared time."""
+
+    known: np.ndarray  # bool over window.transfers
+    dst_index: np.ndarray  # receiving rank's row in the window
+    step_index: np.ndarray  # step's row in the window
+    link: np.ndarray  # index into pairs
+    pairs: np.ndarray  # src node * n_nodes + dst node
+    nbytes: np.ndarray
+    seconds: np.ndarray  # transfer time as measured
+    unshared: np.ndarray  # the same as if it had had its bottleneck port to itself
+
+
+def _pair_transfers(window: Window, cluster: Cluster) -> _Paired:
+    tr = window.transfers
+    si, src_ok = window.rank_index(tr.src)
+    di, dst_ok = window.rank_index(tr.dst)
+    step_idx, step_ok = window.step_index(tr.step)
+    known = src_ok & dst_ok & step_ok
+    si, di, step_idx = si[known], di[known], step_idx[known]
+    n_nodes = len(window.nodes)
+    rank_node = np.asarray(window.rank_node, np.int64)
+    pairs, link = np.unique(rank_node[si] * n_nodes + rank_node[di], return_inverse=True)
+    secs = tr.transfer_s[known]
+    nbytes = np.asarray(tr.nbytes[known], np.float64)
+    node_nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in window.nodes],
+                            np.float64)
+    unshared = _unshared(window, known, link, pairs, nbytes, secs, node_nominal)
+    return _Paired(known, di, step_idx, link, pairs, nbytes, secs, unshared)
+
+
+def link_rate_series(window: Window, cluster: Cluster) -> RunSeries:
+    """Per step and directed network pair, the median of its transfers' rates with the port to themselves.
+
+    What degradation alerts watch: a pair's raw throughput also falls when its transfers come to share a
+    port with others more often (a neighbour slowed down and now everyone sends at once), which is no fault
+    of the path; the rate with the sharing taken out (as for β) falls only when the path got slower."""
+    tr = window.transfers
+    n_nodes, n_steps = len(window.nodes), len(window.steps)
+    step_s = np.max(np.nan_to_num(window.step_s, nan=0.0), axis=1, initial=0.0)  # the slowest rank's step
+    empty = RunSeries(np.asarray(window.steps), step_s, (), np.zeros((n_steps, 0)), np.zeros((n_steps, 0)))
+    if len(tr) == 0 or len(window.ranks) == 0:
+        return empty
+    paired = _pair_transfers(window, cluster)
+    network = (paired.pairs // n_nodes != paired.pairs % n_nodes)[paired.link] & (paired.unshared > 0)
+    if not network.any():
+        return empty
+    columns, column = np.unique(paired.link[network], return_inverse=True)
+    rate = paired.nbytes[network] / paired.unshared[network]
+    cell = paired.step_index[network] * len(columns) + column
+    order = np.lexsort((rate, cell))
+    cell, rate = cell[order], rate[order]
+    starts = np.flatnonzero(np.r_[True, cell[1:] != cell[:-1]])
+    ends = np.r_[starts[1:], len(cell)]
+    medians = (rate[(starts + ends - 1) // 2] + rate[(starts + ends) // 2]) / 2.0
+    grid = np.full(n_steps * len(columns), np.nan)
+    grid[cell[starts]] = medians
+    grid = grid.reshape(n_steps, len(columns))
+    sums = np.zeros((n_steps * len(columns), 2))
+    np.add.at(sums, cell, np.column_stack([paired.nbytes[network][order], paired.seconds[network][order]]))
+    pairs = tuple((int(p // n_nodes), int(p % n_nodes)) for p in paired.pairs[columns])
+    return RunSeries(np.asarray(window.steps), step_s, pairs, sums[:, 0].reshape(n_steps, -1),
+                     sums[:, 1].reshape(n_steps, -1), link_watch_Bps=grid)
 
 
 def _unshared(window: Window, known: np.ndarray, link: np.ndarray, pairs: np.ndarray, nbytes: np.ndarray,

@@ -16,7 +16,7 @@ from typing import Literal
 import numpy as np
 
 from watchtower.analysis.cusum import Alert
-from watchtower.analysis.efficiency import OUTLIER_Z, RELATIVE_JITTER
+from watchtower.analysis.efficiency import FAR_BELOW_PEERS, OUTLIER_Z, RELATIVE_JITTER
 from watchtower.analysis.links import SLOW_FRACTION, LinkStats
 from watchtower.analysis.robust import modified_z
 from watchtower.cluster import Cluster
@@ -85,16 +85,19 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
     direction = np.where(np.arange(2 * n) < n, "out", "in")
     peers = np.array([f"{d}|{cluster.node_group.get(nodes[i], '')}" for i, d in zip(node, direction, strict=True)])
     score = np.full(2 * n, np.nan)
+    far_below = np.zeros(2 * n, bool)
     for group in set(peers[count > 0]):
         members = np.flatnonzero((peers == group) & (count > 0))
         with np.errstate(divide="ignore", invalid="ignore"):
             score[members] = modified_z(np.log(capacity[members]), min_scale=RELATIVE_JITTER)
+        if len(members) >= 3:
+            far_below[members] = capacity[members] < FAR_BELOW_PEERS * np.nanmedian(capacity[members])
     # A port is only bounded when every link through it runs at the other end's capacity: those links show
     # the other port, and this one may be as fast as it likes (kestrel-03's way in, fed by two slow senders).
     shown = np.zeros(2 * n, bool)
     np.logical_or.at(shown, ends, capacity[other] > (1 + RELATIVE_JITTER) * beta)
     bound = (count > 0) & ~shown
-    outlier = (np.nan_to_num(score, nan=0.0) < threshold) & ~bound
+    outlier = ((np.nan_to_num(score, nan=0.0) < threshold) | far_below) & ~bound
     nominal = np.array([np.nan if (v := cluster.nominal_Bps(nodes[i])) is None else v for i in node], np.float64)
     below = (capacity < slow_fraction * nominal) & ~bound
     slow = outlier | below

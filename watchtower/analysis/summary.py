@@ -24,7 +24,7 @@ from watchtower.analysis.efficiency import (
     pop_efficiency,
     serial_fractions,
 )
-from watchtower.analysis.links import SLOW_FRACTION, LinkStats, link_stats
+from watchtower.analysis.links import SLOW_FRACTION, LinkStats, link_rate_series, link_stats
 from watchtower.analysis.models import StepModel, eta_s, remaining_steps, step_model
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.window import RunSeries, Window
@@ -76,13 +76,15 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             warmup: int = WARMUP, recent: int = RECENT_STEPS, runs: Sequence[tuple[int, float]] = (),
             scenarios: Sequence[tuple[str, float, float, float]] = (
                 ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
-            nic_Bps: np.ndarray | None = None) -> Analysis:
+            nic_Bps: np.ndarray | None = None, history: Window | None = None) -> Analysis:
     """Analyse a window (and the run's series, when there is one) against the cluster's configuration.
 
     ``runs`` are (p, S) of earlier runs at other sizes, for the Karp–Flatt serial fraction; this window's
     (p, S) is added to them (no serial fraction while all runs have one size). ``scenarios`` are
     (label, bandwidth ×, latency ÷, ranks ×) what-ifs. ``nic_Bps`` (float64 [N, 2], NaN: unknown) is each
-    window node's NIC-counter rate out and in, the second witness of port capacity.
+    window node's NIC-counter rate out and in, the second witness of port capacity. ``history`` is every
+    step the caller still holds in full: when given, link degradation is watched on its transfers with the
+    port sharing taken out (``links.link_rate_series``), else on ``series``.
     """
     sums = reduce_window(window)
     eff = pop_efficiency(window, sums)
@@ -99,7 +101,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
 
     links = link_stats(window, cluster, eff.wall_s, remaining, slow_fraction=slow_fraction)
     ports, links = port_stats(links, window.nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
-    alerts = degradation_alerts(series, window.nodes, warmup=warmup) if series is not None else ()
+    link_rates = None if history is None else link_rate_series(history, cluster)
+    alerts = degradation_alerts(series, window.nodes, links=link_rates, warmup=warmup) if series is not None else ()
     net = [lk for lk in links if not lk.local]
     at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in net if lk.slow)
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
@@ -184,24 +187,27 @@ HOW: dict[str, tuple[str, str]] = {
                           "definition; 2 %: common practice, no source"),
     "ports.score": ("modified z-score 0.6745 (x − median) / MAD of log capacity among ports of the same "
                     "direction and node group", "Iglewicz & Hoaglin (1993)"),
-    "ports.slow": ("score < −3.5, or capacity below the set fraction (default 0.5) of the node's nominal rate",
-                   "Iglewicz & Hoaglin (1993); fraction: common practice, no source"),
+    "ports.slow": ("score < −3.5 or capacity under a third of its peers' median (outlier), or capacity below the "
+                   "set fraction (default 0.5) of the node's nominal rate (below-nominal)",
+                   "Iglewicz & Hoaglin (1993); third and fraction: common practice, no source"),
     "ports.nic_Bps": ("the node's NIC-counter rate in that direction (psutil, loopback excluded); nic_disagrees "
                       "when it exceeds capacity by more than 10 %: unseen traffic shares the port",
                       "measured; 10 % margin for headers: common practice, no source"),
     "links.utilisation": ("bytes / window wall time / nominal rate (lower of the two NICs)", "plain ratio"),
     "links.score": ("modified z-score 0.6745 (x − median) / MAD of log β among links of the same class",
                     "Iglewicz & Hoaglin (1993)"),
-    "links.slow": ("score < −3.5, or β below the set fraction (default 0.5) of nominal",
-                   "Iglewicz & Hoaglin (1993); fraction: common practice, no source"),
+    "links.slow": ("score < −3.5 or β under a third of its class's median (outlier), β below the set fraction "
+                   "(default 0.5) of nominal (below-nominal), or running at a slow port's capacity (slow port)",
+                   "Iglewicz & Hoaglin (1993); third and fraction: common practice, no source"),
     "links.hours_at_stake": ("slow links: remaining steps × per-step time the slowest receiver on the link would "
                              "save at the class's median β (its transfer time × (1 − β/β_median)); an upper estimate",
                              "model above"),
     "stragglers": ("ranks whose modified z-score of log compute exceeds +3.5", "Iglewicz & Hoaglin (1993)"),
     "alerts": ("one-sided tabular CUSUM, k = 0.5σ, h = 5σ, on medians of 4-step blocks clipped to μ0 ± 2.5σ "
                "(μ0, σ = median, 1.4826·MAD of the first 40 steps; for a link σ ≤ μ0/4); step time upward, "
-               "each link's fastest transfer per step downward; "
-               "reported when the next block confirms a change of 5 % or more (20 % for a link); began = "
+               "each link's per-step median transfer rate with port sharing taken out (see "
+               "links.concurrency) downward; "
+               "reported when the next block confirms a change of 5 % or more (40 % for a link); began = "
                "least-squares change "
                "point; port: the one explaining the link, else the sender's way out when all its links "
                "dropped, else the receiver's way in likewise",

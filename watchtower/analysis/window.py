@@ -121,16 +121,16 @@ class RunSeries:
     links: tuple[tuple[int, int], ...]  # P pairs of node indices
     link_bytes: np.ndarray  # float64 [S, P]
     link_transfer_s: np.ndarray  # float64 [S, P]
-    link_peak_Bps: np.ndarray | None = None  # float64 [S, P]: the step's fastest transfer on the pair
+    # float64 [S, P]: the rate degradation alerts watch, less sensitive than throughput to flows that happen
+    # to share a port: the store keeps each step's fastest transfer, the analysis the median rate with the
+    # sharing taken out (links.link_rate_series) where it still holds the transfers.
+    link_watch_Bps: np.ndarray | None = None
 
     def link_rate(self) -> np.ndarray:
-        """Per step and pair, the rate to watch for degradation (NaN where the pair moved nothing).
-
-        The fastest transfer of the step when known: a pair's throughput also falls when its transfers
-        happen to share a port with others more often, which is no fault of the link; its fastest transfer,
-        usually one that had the path to itself, falls only when the path got slower."""
-        if self.link_peak_Bps is not None:
-            return self.link_peak_Bps
+        """Per step and pair, the rate to watch for degradation (NaN where the pair moved nothing);
+        throughput (bytes / transfer time) when no better rate is known."""
+        if self.link_watch_Bps is not None:
+            return self.link_watch_Bps
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where((self.link_bytes > 0) & (self.link_transfer_s > 0),
                             self.link_bytes / self.link_transfer_s, np.nan)
