@@ -102,7 +102,7 @@ def generate() -> tuple[dict, list[tuple[int, list[bytes]]]]:
     skews = [CLOCK_SKEW_NS[node_of(r)] for r in range(WORLD)]
     probes = [
         Probe(r, WORLD, NODES[node_of(r)], None, layers=(*LAYERS, GRAD_SYNC), job="heron-12 (invented)",
-              clock=clocks[r], wall_clock=lambda r=r: EPOCH_NS + clocks[r].now - skews[r])
+              sender=1000 + r, clock=clocks[r], wall_clock=lambda r=r: EPOCH_NS + clocks[r].now - skews[r])
         for r in range(WORLD)
     ]
     out: list[_Sent] = []

@@ -54,6 +54,14 @@ def format_snapshot(s: dict[str, Any]) -> str:
          for lk in s["links"]],
         right={2, 3, 4, 5, 6, 7, 9},
     )
+    slow_ports = [p for p in s.get("ports", []) if p["slow"]]
+    if slow_ports:
+        out += ["", "slow ports (a node's way out or in; involve the site's network operators before touching "
+                "hardware)"]
+        out += _table(["port", "capacity", "score", "", "explains"],
+                      [[f"{visible(p['node'])} {p['direction']}", rate(p["capacity_Bps"]), number(p["score"]),
+                        p.get("reason", ""), ", ".join(f"{visible(a)}->{visible(b)}" for a, b in p["explains"])]
+                       for p in slow_ports], right={1, 2})
     if s["stragglers"]:
         out += ["", "stragglers (compute outliers)"]
         out += _table(["rank", "node", "compute", "score"],
