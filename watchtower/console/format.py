@@ -174,3 +174,20 @@ def split_bar(first: float, second: float, scale: float, width: int) -> tuple[st
     first_cells = min(first_cells, width)
     both_cells = min(max(both_cells, first_cells), width)
     return "█" * first_cells, "░" * (both_cells - first_cells)
+
+
+_SEPARATORS = "-_.:/@"
+
+
+def short_names(names: Iterable[str]) -> dict[str, str]:
+    """Each name less the prefix all of them share up to a separator ("kestrel-04" -> "04" among
+    kestrel-01..06), so narrow columns show what tells nodes apart; the detail line shows names whole."""
+    unique = sorted(set(names))
+    if len(unique) < 2:
+        return {name: name for name in unique}
+    first, last = unique[0], unique[-1]
+    common = 0
+    while common < min(len(first), len(last)) and first[common] == last[common]:
+        common += 1
+    cut = max((i + 1 for i in range(common) if first[i] in _SEPARATORS), default=0)
+    return {name: name[cut:] or name for name in unique}

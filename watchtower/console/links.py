@@ -44,9 +44,11 @@ def link_key(link: Record) -> str:
     return f"{link['src']}\x00{link['dst']}"
 
 
-def link_name(link: Record) -> Text:
-    """`src→dst` with both names shown literally."""
-    return Text.assemble(fmt.literal(link["src"]), ARROW, fmt.literal(link["dst"]))
+def link_name(link: Record, short: dict[str, str] | None = None) -> Text:
+    """`src→dst` with both names shown literally (``short``: the tails that tell nodes apart)."""
+    short = short or {}
+    src, dst = link["src"], link["dst"]
+    return Text.assemble(fmt.literal(short.get(src, src)), ARROW, fmt.literal(short.get(dst, dst)))
 
 
 class LinksView(SnapshotView):
@@ -55,6 +57,7 @@ class LinksView(SnapshotView):
     def __init__(self) -> None:
         super().__init__(id="links")
         self._port_width = 14
+        self._short: dict[str, str] = {}
 
     def compose(self) -> ComposeResult:
         yield Static(id="links-title", classes="view-title")
@@ -84,6 +87,7 @@ class LinksView(SnapshotView):
         names = [node["name"] for node in snapshot["nodes"]]
         for link in links:
             names.extend(n for n in (link["src"], link["dst"]) if n not in names)
+        self._short = fmt.short_names(names)
         box = self.query_one("#matrix-box", ScrollableContainer)
         box_width = min(matrix_width(len(names)) + 1, max(self.size.width // 2, LEGEND_WIDTH + 1))
         box.styles.width = box_width
@@ -102,14 +106,20 @@ class LinksView(SnapshotView):
         bad = self.paint("bad")
         return [
             Text(SLOW_MARK if slow else "", bad),
-            fmt.fit(link_name(link), 15),
+            fmt.fit(link_name(link, self._short), 15),
             Text(fmt.rate(link["bandwidth_Bps"]), bad if slow else "", justify="right"),
             Text(fmt.percent(link["utilisation"]), justify="right"),
             Text(fmt.seconds(link["latency_s"]), justify="right"),
             Text(fmt.number(link["score"]), justify="right"),
             Text(fmt.hours(link["hours_at_stake"]), justify="right"),
-            fmt.fit(fmt.literal(link["port"]), self._port_width) if link["port"] is not None else Text(""),
+            fmt.fit(fmt.literal(self._short_port(link["port"])), self._port_width) if link["port"] is not None
+            else Text(""),
         ]
+
+    def _short_port(self, port: str) -> str:
+        """"kestrel-04 out" as "04 out" when the node names share a prefix."""
+        node, _, direction = port.rpartition(" ")
+        return f"{self._short.get(node, node)} {direction}" if node else port
 
     def _retitle(self) -> None:
         table = self.table

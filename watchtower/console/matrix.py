@@ -79,9 +79,10 @@ class LinkMatrix(Widget):
         cell = cell_width(len(grid.nodes))
         lines = [Text(" " * (LABEL_WIDTH + 4) + "".join(f"{n:>{cell}}" for n in range(1, len(grid.nodes) + 1)))]
         top = grid.top
+        short = fmt.short_names(grid.nodes)
         for row, src in enumerate(grid.nodes, start=1):
             line = Text(f"{row:>3} ", self._paint("quiet"))
-            line.append_text(fmt.fit(fmt.literal(src), LABEL_WIDTH))
+            line.append_text(fmt.fit(fmt.literal(short.get(src, src)), LABEL_WIDTH))
             line.pad_right(LABEL_WIDTH + 4 - line.cell_len)
             for dst in grid.nodes:
                 line.append_text(self._cell(src, dst, top, cell))
