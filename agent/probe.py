@@ -135,6 +135,8 @@ class Probe:
     ) -> None:
         if not 0 <= rank < world:
             raise ValueError(f"rank {rank} is outside a world of {world}")
+        wire.check_name(node, "node name")
+        wire.check_name(job, "job name")
         self.rank, self.world, self.node, self.job = rank, world, node, job
         self.clock = clock
         self.wall_clock = wall_clock
@@ -187,6 +189,9 @@ class Probe:
         """The index of layer ``name``, registering it (and re-announcing the schema) if it is new."""
         index = self._layers.get(name)
         if index is None:
+            wire.check_name(name, "layer name")
+            if len(self._layers) >= wire.MAX_LAYERS:
+                raise ValueError(f"more than {wire.MAX_LAYERS} layers")
             index = len(self._layers)
             self._layers[name] = index
             self._compute.append(0)

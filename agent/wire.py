@@ -158,6 +158,18 @@ class ClockOffset:
 Message = Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset
 
 
+def check_name(name: str, what: str = "name") -> str:
+    """A name fit for the wire (UTF-8, at most MAX_NAME_BYTES), or ValueError: a probe refuses it at once
+    rather than sending frames every collector would reject."""
+    try:
+        size = len(name.encode("utf-8"))
+    except UnicodeEncodeError:
+        raise ValueError(f"{what} {name!r} is not valid Unicode text") from None
+    if size > MAX_NAME_BYTES:
+        raise ValueError(f"{what} {name[:40]!r}... is longer than {MAX_NAME_BYTES} bytes")
+    return name
+
+
 def _header(kind: Kind, sender: int, seq: int, wall_ns: int, count_a: int = 0, count_b: int = 0) -> bytes:
     return HEADER.pack(MAGIC, VERSION, kind, sender, seq, wall_ns, count_a, count_b)
 

@@ -1,18 +1,23 @@
 """Collector ingest against raw pyzmq receiving the same messages, measured side by side in one run.
 
-    python bench/bench_ingest.py [--messages 20000] [--layers 256] [--exchanges 64]
+    python bench/bench_ingest.py [--messages 20000] [--layers 256] [--exchanges 64] [--profile]
 
 A sender process pushes step messages (one rank's step: 2 x LAYERS int64 timings and an exchange table)
-from DEALER sockets to a ROUTER; the receiver either only takes them off the socket (raw), or runs the
-collector: envelope split, validation and decoding, loss accounting and the store (ingest), and also
-appends them to a recording (ingest + record). Prints messages/s, MB/s, layer records/s and the ratio
-to raw. Targets (issue 8): >= 50% of raw at 16 KiB frames, >= 2 million layer records per second.
+from a DEALER socket to a ROUTER; the receiver either only takes them off the socket (raw ROUTER), or runs
+the collector: envelope split, validation and decoding, loss accounting and the store (ingest), and also
+appends them to a recording (ingest + record). A second raw baseline sends the same frames PUB -> SUB
+(no routing envelope, no flow control: the other transport pattern an agent could have used). Prints
+messages/s, MB/s, layer records/s and the ratio to raw ROUTER. ``--exchanges 192`` makes 16 KiB frames.
+``--profile`` also prints where the collector's time goes (cProfile of ``Ingest.feed`` on the same
+messages, no socket). Targets: >= 50% of raw at 16 KiB frames, >= 2 million layer records per second.
 """
 
 from __future__ import annotations
 
 import argparse
+import cProfile
 import multiprocessing as mp
+import pstats
 import tempfile
 import threading
 import time
@@ -64,6 +69,65 @@ def send(endpoint: str, layers: int, exchanges: int, count: int, ready: mp.Event
     ctx.term()
 
 
+def send_pub(endpoint: str, layers: int, exchanges: int, count: int, ready: mp.Event,  # type: ignore[type-arg]
+             joined: mp.Event) -> None:  # type: ignore[type-arg]
+    """PUB drops while nobody is subscribed: send a hello until the subscriber says it hears us."""
+    batch = [frames[1:] for frames in messages(layers, exchanges, count)]
+    ctx = zmq.Context()
+    sock = ctx.socket(zmq.PUB)
+    sock.setsockopt(zmq.SNDHWM, 0)  # PUB drops silently at its high-water mark: unbounded for the bench
+    sock.connect(endpoint)
+    while not joined.wait(0.01):
+        sock.send(b"hello")
+    ready.wait()
+    for frames in batch:
+        sock.send_multipart(frames)
+    sock.close(linger=-1)
+    ctx.term()
+
+
+def measure_pubsub(layers: int, exchanges: int, count: int) -> float:
+    """Seconds for a SUB to receive ``count + RANKS`` messages (the same frames, without the envelope)."""
+    ctx = zmq.Context()
+    sub = ctx.socket(zmq.SUB)
+    sub.setsockopt(zmq.RCVHWM, 0)
+    sub.setsockopt(zmq.LINGER, 0)
+    sub.setsockopt(zmq.SUBSCRIBE, b"")
+    port = sub.bind_to_random_port("tcp://127.0.0.1")
+    ready, joined = mp.Event(), mp.Event()
+    sender = mp.Process(target=send_pub, args=(f"tcp://127.0.0.1:{port}", layers, exchanges, count, ready, joined))
+    sender.start()
+    while sub.recv_multipart() != [b"hello"]:
+        pass
+    joined.set()
+    while sub.poll(100):  # let the last hellos through
+        sub.recv_multipart()
+    ready.set()
+    total = count + RANKS
+    received, start = 0, None
+    while received < total:
+        sub.recv_multipart()
+        start = start or time.perf_counter()
+        received += 1
+    elapsed = time.perf_counter() - (start or time.perf_counter())
+    sender.join()
+    sub.close()
+    ctx.term()
+    return elapsed
+
+
+def profile(layers: int, exchanges: int, count: int) -> None:
+    """Where ingest spends its time, per function, on the same messages without a socket."""
+    batch = [frames[1:] for frames in messages(layers, exchanges, count)]
+    ingest = Ingest()
+    profiler = cProfile.Profile()
+    profiler.enable()
+    for frames in batch:
+        ingest.feed(0, frames)
+    profiler.disable()
+    pstats.Stats(profiler).sort_stats("tottime").print_stats(12)
+
+
 def measure(kind: str, layers: int, exchanges: int, count: int) -> tuple[float, int]:
     """Seconds to receive ``count + RANKS`` messages the given way, and their payload bytes."""
     ctx = zmq.Context()
@@ -113,18 +177,25 @@ def main() -> None:
     parser.add_argument("--messages", type=int, default=20_000)
     parser.add_argument("--layers", type=int, default=256)
     parser.add_argument("--exchanges", type=int, default=64)
+    parser.add_argument("--profile", action="store_true", help="also profile ingest (cProfile, no socket)")
     args = parser.parse_args()
     size = sum(len(f) for f in messages(args.layers, args.exchanges, 1)[-1])
     print(f"step message: {size / 1024:.1f} KiB ({args.layers} layers, {args.exchanges} exchanges), "
           f"{args.messages} messages from one sender process")
     raw_s = None
     print(f"{'receiver':18s} {'msg/s':>10s} {'MB/s':>8s} {'layer rec/s':>12s} {'vs raw':>7s}")
-    for kind in ("raw", "ingest", "ingest + record"):
-        elapsed, _ = measure(kind, args.layers, args.exchanges, args.messages)
+    for kind in ("raw", "raw PUB/SUB", "ingest", "ingest + record"):
+        if kind == "raw PUB/SUB":
+            elapsed = measure_pubsub(args.layers, args.exchanges, args.messages)
+        else:
+            elapsed, _ = measure(kind, args.layers, args.exchanges, args.messages)
         raw_s = raw_s or elapsed
         rate = args.messages / elapsed
-        print(f"{kind:18s} {rate:10.0f} {rate * size / 1e6:8.0f} {rate * args.layers:12.0f} "
+        label = "raw ROUTER/DEALER" if kind == "raw" else kind
+        print(f"{label:18s} {rate:10.0f} {rate * size / 1e6:8.0f} {rate * args.layers:12.0f} "
               f"{raw_s / elapsed:7.0%}")
+    if args.profile:
+        profile(args.layers, args.exchanges, args.messages)
 
 
 if __name__ == "__main__":

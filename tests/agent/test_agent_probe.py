@@ -215,3 +215,10 @@ def test_record_transfer_keeps_the_transfer_and_charges_only_the_exposed_part() 
     assert table[wire.X_WAIT].tolist() == [wire.UNKNOWN_WAIT, -50]  # the peer was ready 50 ns before
     with pytest.raises(ValueError):
         probe.record_transfer("halo", op=Op.RECV, peer=5, nbytes=1, start_ns=0, end_ns=1)
+
+
+@pytest.mark.parametrize(("node", "layer"), [("n" * 300, "ok"), ("ok", "\ud800"), ("ok", "l" * 257)])
+def test_names_the_wire_cannot_carry_are_refused_at_once(node: str, layer: str) -> None:
+    with pytest.raises(ValueError):
+        probe = Probe(0, 1, node, None, clock=ManualClock())
+        probe.compute(layer)

@@ -157,3 +157,18 @@ def test_ports_json_is_plain(rng: np.random.Generator) -> None:
         assert p["direction"] in ("out", "in")
     assert all("port" in lk and "unexplained" in lk for lk in out["links"])
     assert {"ports.capacity_Bps", "ports.slow", "links.port", "links.concurrency"} <= set(out["how"])
+
+
+def test_a_way_out_held_back_by_a_far_slower_way_in_is_not_a_second_culprit(rng: np.random.Generator) -> None:
+    # n2's way in is choked to a tenth; its way out, slowed to 0.55 by the acknowledgements queueing behind it,
+    # is below its peers too, but the verdict names one part: the way in.
+    egress, ingress = np.full(N, C), np.full(N, C)
+    ingress[X], egress[X] = C / 10, 0.55 * C
+    out = analysis_to_json(analyse(window_of(ring_transfers(egress, ingress, rng)), None, CLUSTER))
+    ports = {(p["node"], p["direction"]): p for p in out["ports"]}
+    assert [key for key, p in ports.items() if p["slow"]] == [(f"n{X}", "in")]
+    assert ports[f"n{X}", "out"]["shadowed_by"] == f"n{X} in" and ports[f"n{X}", "out"]["reason"] == ""
+    links = {(lk["src"], lk["dst"]): lk for lk in out["links"]}
+    for pair in ((f"n{X - 1}", f"n{X}"), (f"n{X + 1}", f"n{X}"), (f"n{X}", f"n{X - 1}"), (f"n{X}", f"n{X + 1}")):
+        assert links[pair]["slow"] and links[pair]["port"] == f"n{X} in", pair  # out links: slowed by the way in
+    assert sum(lk["slow"] for lk in out["links"]) == 4

@@ -223,3 +223,16 @@ async def test_no_color_keeps_every_mark_readable(monkeypatch: pytest.MonkeyPatc
     assert app.no_color
     assert "◆ COMM" in layers and "INSECURE" in layers and "INVENTED" in layers
     assert "! SLOW" in links and "!░░" in links
+
+
+async def test_layers_without_figures_yet_are_drawn_not_fatal(clock: FakeClock) -> None:
+    early = make_snapshot()
+    for layer in early["layers"]:  # schemas arrived, no complete step yet
+        layer["compute_s"] = layer["exchange_s"] = layer["comm_fraction"] = None
+    app = ConsoleApp(StaticFeed([early]), clock=clock)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await pilot.press("s", "enter")
+        await pilot.pause()
+        text = screen_text(app)
+    assert early["layers"][0]["name"] in text

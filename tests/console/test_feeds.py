@@ -200,3 +200,46 @@ def _env() -> dict[str, str]:
     import os
 
     return dict(os.environ)
+
+
+async def test_console_on_a_live_collector_shows_the_ranks_as_they_report(endpoint: str,
+                                                                        zmq_context: zmq.Context) -> None:
+    collector = Collector(endpoint, Ingest(), context=zmq_context)
+    app = ConsoleApp(LiveFeed(collector, security={"mode": "loopback", "warning": None}, period_s=0.05))
+    async with app.run_test(size=(80, 24)) as pilot:
+        await _until(pilot, lambda: app.snapshot is not None)
+        clocks = [ManualClock(), ManualClock()]
+        probes = [Probe(r, 2, f"host-{r}", collector.bound, clock=clocks[r], context=zmq_context) for r in range(2)]
+        for _ in range(3):
+            for probe, clock in zip(probes, clocks, strict=True):
+                with probe.compute("[red]attn[/]"):  # markup from the wire stays text
+                    clock.advance(2_000_000)
+                probe.end_step()
+        await _until(pilot, lambda: app.snapshot["ranks"] == 2 and app.snapshot["steps"] == 3)
+        await pilot.pause(0.3)  # one redraw period
+        text = screen_text(app)
+        for probe in probes:
+            probe.close()
+    assert "2/2" in text and "[red]attn[/]" in text
+
+
+def test_live_demo_watches_real_ranks_and_stops_them_on_exit() -> None:
+    import psutil
+
+    from watchtower.demo import run_demo
+
+    seen: dict[str, Any] = {}
+
+    def console(feed: Any) -> int:
+        running = Running(feed)
+        try:
+            seen["snapshot"] = running.until(lambda s: s["ranks"] == 3 and s["steps"] >= 3, timeout_s=60)
+            seen["children"] = len(psutil.Process().children())
+        finally:
+            running.close()
+        return 0
+
+    assert run_demo(live=True, speed=1.0, ranks=3, window=120, run_console=console) == 0
+    assert seen["children"] == 3 and {link["src"] for link in seen["snapshot"]["links"]} == {
+        "local-0", "local-1", "local-2"}
+    assert psutil.Process().children() == []  # every rank it started is gone

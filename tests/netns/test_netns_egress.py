@@ -46,3 +46,15 @@ def test_shaped_links_bandwidth_is_the_tbf_payload_rate(snapshot: dict[str, Any]
     by_pair = links(snapshot)
     for pair in ((SLOW, "node0"), (SLOW, "node2")):
         assert by_pair[pair]["bandwidth_Bps"] == pytest.approx(expected, rel=0.10), pair
+
+
+def test_the_culprit_is_the_shaped_nodes_way_out(snapshot: dict[str, Any]) -> None:
+    """Both of node1's links are explained by one port, its way out, whose capacity is what tbf allows:
+    the two flows it carries at once are seen as the port's capacity, not each as half of it."""
+    slow_ports = {(p["node"], p["direction"]): p for p in snapshot["ports"] if p["slow"]}
+    assert set(slow_ports) == {(SLOW, "out")}, [(p["node"], p["direction"], p["score"]) for p in snapshot["ports"]]
+    port = slow_ports[SLOW, "out"]
+    assert port["capacity_Bps"] == pytest.approx(tcp_payload_Bps(SLOW_BPS), rel=0.10)
+    assert sorted(map(tuple, port["explains"])) == [(SLOW, "node0"), (SLOW, "node2")]
+    by_pair = links(snapshot)
+    assert by_pair[SLOW, "node0"]["port"] == by_pair[SLOW, "node2"]["port"] == f"{SLOW} out"

@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 from netns_cluster import Job, NetnsCluster
-from netns_helpers import links, report, ring_links, run_job, tc_rate
+from netns_helpers import links, report, ring_links, run_job, tc_rate, tcp_payload_Bps
 
 pytestmark = pytest.mark.netns
 
@@ -35,3 +35,11 @@ def test_exactly_the_links_into_the_shaped_node_are_slow(snapshot: dict[str, Any
     assert set(by_pair) == ring_links(netns_cluster.nodes)
     slow = {pair for pair, link in by_pair.items() if link["slow"]}
     assert slow == {("node0", SLOW), ("node2", SLOW)}, {pair: by_pair[pair]["score"] for pair in by_pair}
+
+
+def test_the_culprit_is_the_shaped_nodes_way_in(snapshot: dict[str, Any]) -> None:
+    slow_ports = {(p["node"], p["direction"]): p for p in snapshot["ports"] if p["slow"]}
+    assert set(slow_ports) == {(SLOW, "in")}, [(p["node"], p["direction"], p["score"]) for p in snapshot["ports"]]
+    port = slow_ports[SLOW, "in"]
+    assert port["capacity_Bps"] == pytest.approx(tcp_payload_Bps(SLOW_BPS), rel=0.10)
+    assert sorted(map(tuple, port["explains"])) == [("node0", SLOW), ("node2", SLOW)]

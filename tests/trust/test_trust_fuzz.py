@@ -165,7 +165,7 @@ def test_node_figures_nan_inf_and_negative(cpu: float, memory: float, interval: 
 
 hostile_text = st.lists(st.one_of(st.sampled_from(["[bold red]", "[/]", "\x1b[2J", "\x1b]0;pwned\x07", "\r", "\b",
                                                    "\u202e", "\u200b", "\x00", "\x9b31m", "é", "𝕏"]),
-                                  st.characters()), max_size=40).map("".join)
+                                  st.characters(codec="utf-8")), max_size=40).map("".join)  # what a str can send
 
 
 @FUZZ

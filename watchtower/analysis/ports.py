@@ -21,6 +21,7 @@ from watchtower.analysis.links import SLOW_FRACTION, LinkStats
 from watchtower.analysis.robust import modified_z
 from watchtower.cluster import Cluster
 
+SHADOW = 3.0  # one direction this many times slower than the other explains it; common practice, no source
 LIMITS = 0.75  # a slow port limits a link running at ≥ 75 % of the port's capacity; common practice, no source
 NIC_MARGIN = 0.1  # counters may exceed the payload rate by protocol headers (~5 %); common practice, no source
 
@@ -40,7 +41,9 @@ class PortStats:
     the NIC counters' rate for this direction when known; ``nic_disagrees`` is set when the counters saw
     the port move more than ``capacity_Bps`` (plus a margin for headers): traffic the probes do not see
     shares the port, so its low capacity is contention, not a broken port. ``explains`` lists the slow
-    links this port limits.
+    links this port limits. ``shadowed_by`` names the node's other direction when that one is slow and
+    more than ``SHADOW`` times slower: TCP's acknowledgements travel the other way, so a choked way in
+    also holds back the way out (and the reverse); this port is then not judged slow on its own.
     """
 
     node: int
@@ -56,6 +59,7 @@ class PortStats:
     slow: bool
     reason: str  # "" | "outlier" | "below-nominal" | "outlier, below-nominal"
     explains: tuple[tuple[str, str], ...]
+    shadowed_by: str | None = None  # the node's other direction, far slower, that this one only suffers from
 
     @property
     def name(self) -> str:
@@ -101,6 +105,11 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
     nominal = np.array([np.nan if (v := cluster.nominal_Bps(nodes[i])) is None else v for i in node], np.float64)
     below = (capacity < slow_fraction * nominal) & ~bound
     slow = outlier | below
+    # One direction far slower than the other: the faster one's shortfall is the slow one's doing (its
+    # acknowledgements queue behind the choked direction), not a second broken part.
+    other_way = np.concatenate([np.arange(n, 2 * n), np.arange(n)])
+    shadowed = slow & slow[other_way] & (capacity > SHADOW * capacity[other_way])
+    slow &= ~shadowed
 
     # Every link that runs at a slow port's capacity is limited by it, and so slow itself, whether or not
     # its own score stood out: links that cross a bad port are few, and among links of very different
@@ -112,6 +121,14 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
     named = {pair: min(qs, key=lambda q, qs=qs: (capacity[q] > (1 + RELATIVE_JITTER) * capacity[qs].min(),
                                                  -load[q], q))
              for pair, qs in candidates.items() if qs}
+    # A link slow in its own right through a shadowed port is explained by the port that shadows it; it is
+    # not made slow by it (its shortfall is the acknowledgements', which its own figures already show).
+    for lk in net:
+        if lk.slow and (lk.src, lk.dst) not in named:
+            behind = [int(other_way[q]) for q in (lk.src, n + lk.dst)
+                      if shadowed[q] and lk.bandwidth_Bps >= LIMITS * capacity[q]]
+            if behind:
+                named[lk.src, lk.dst] = behind[0]
     nic = np.full((n, 2), np.nan) if nic_Bps is None else np.asarray(nic_Bps, np.float64).reshape(n, 2)
     nic_port = np.concatenate([nic[:, 0], nic[:, 1]])
     explains: dict[int, list[tuple[str, str]]] = {}
@@ -120,7 +137,8 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
     ports = []
     for p in np.flatnonzero(count > 0):
         i = int(node[p])
-        reason = ", ".join(r for r, hit in (("outlier", outlier[p]), ("below-nominal", below[p])) if hit)
+        reason = "" if shadowed[p] else ", ".join(
+            r for r, hit in (("outlier", outlier[p]), ("below-nominal", below[p])) if hit)
         seen = float(nic_port[p]) if np.isfinite(nic_port[p]) else None
         ports.append(PortStats(
             node=i, node_name=nodes[i], direction=str(direction[p]), links=int(count[p]),  # type: ignore[arg-type]
@@ -128,6 +146,7 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
             nic_Bps=seen, nic_disagrees=bool(seen is not None and seen > (1 + NIC_MARGIN) * capacity[p]),
             score=float(score[p]), slow=bool(reason), reason=reason,
             explains=tuple(explains.get(int(p), ())),
+            shadowed_by=f"{nodes[i]} {direction[other_way[p]]}" if shadowed[p] else None,
         ))
     ports.sort(key=lambda ps: (ps.node, ps.direction != "out"))
     out_links = []

@@ -190,6 +190,9 @@ HOW: dict[str, tuple[str, str]] = {
     "ports.slow": ("score < −3.5 or capacity under a third of its peers' median (outlier), or capacity below the "
                    "set fraction (default 0.5) of the node's nominal rate (below-nominal)",
                    "Iglewicz & Hoaglin (1993); third and fraction: common practice, no source"),
+    "ports.shadowed_by": ("set when the node's other direction is slow and over 3× slower: acknowledgements queue "
+                          "behind it, so this direction's shortfall is its doing and this port is not called slow",
+                          "TCP acknowledges in the reverse direction (RFC 9293); 3×: common practice, no source"),
     "ports.nic_Bps": ("the node's NIC-counter rate in that direction (psutil, loopback excluded); nic_disagrees "
                       "when it exceeds capacity by more than 10 %: unseen traffic shares the port",
                       "measured; 10 % margin for headers: common practice, no source"),
@@ -256,7 +259,8 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
         "ports": [{"node": p.node_name, "direction": p.direction, "capacity_Bps": _f(p.capacity_Bps),
                    "slow": p.slow, "reason": p.reason, "score": _f(p.score),
                    "explains": [list(pair) for pair in p.explains], "links": p.links, "lower_bound": p.lower_bound,
-                   "nominal_Bps": _f(p.nominal_Bps), "nic_Bps": _f(p.nic_Bps), "nic_disagrees": p.nic_disagrees}
+                   "nominal_Bps": _f(p.nominal_Bps), "nic_Bps": _f(p.nic_Bps), "nic_disagrees": p.nic_disagrees,
+                   "shadowed_by": p.shadowed_by}
                   for p in a.ports],
         "local_links": [_link_json(lk) for lk in local],
         "stragglers": [{"rank": st.rank, "node": st.node, "compute_s": _f(st.compute_s), "score": _f(st.score)}

@@ -159,8 +159,9 @@ class ConsoleApp(App[None]):
 
     def on_snapshot_view_detail_changed(self, message: SnapshotView.DetailChanged) -> None:
         """Show the whole text of the current selection (tables shorten long names)."""
-        if message.view.id == self.view:
-            self.query_one("#detail", Static).update(message.text)
+        if message.view.id == self.view and self.is_running:  # a late message after unmount has nowhere to go
+            for detail in self.query("#detail").results(Static):
+                detail.update(message.text)
 
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
         """Replay keys exist only for a replay; view keys only on the main screen."""

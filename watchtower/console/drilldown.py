@@ -83,7 +83,7 @@ class WorstRanksScreen(ModalScreen[None]):
             table.set_records([])
             return
         ranks = layer["worst_ranks"]
-        self._scale = max((r["compute_s"] + r["exchange_s"] for r in ranks), default=0.0)
+        self._scale = max(((r["compute_s"] or 0.0) + (r["exchange_s"] or 0.0) for r in ranks), default=0.0)
         title.update(
             Text.assemble(
                 ("worst ranks of layer ", self._paint("quiet")),
@@ -110,7 +110,8 @@ class WorstRanksScreen(ModalScreen[None]):
         self._describe()
 
     def _cells(self, rank: Record) -> list[Text]:
-        compute_bar, exchange_bar = fmt.split_bar(rank["compute_s"], rank["exchange_s"], self._scale, BAR_WIDTH)
+        compute_bar, exchange_bar = fmt.split_bar(rank["compute_s"] or 0.0, rank["exchange_s"] or 0.0, self._scale,
+                                                  BAR_WIDTH)
         return [
             Text(str(rank["rank"]), justify="right"),
             fmt.fit(fmt.literal(rank["node"]), 12),

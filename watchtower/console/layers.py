@@ -46,7 +46,7 @@ class LayersView(SnapshotView):
     def show(self, snapshot: Snapshot) -> None:
         """Rescale the bars to the largest layer and refill the table."""
         records = [{"index": i, **layer} for i, layer in enumerate(snapshot["layers"])]
-        self._scale = max((r["compute_s"] + r["exchange_s"] for r in records), default=0.0)
+        self._scale = max(((r["compute_s"] or 0.0) + (r["exchange_s"] or 0.0) for r in records), default=0.0)
         self._layout_columns()
         self.table.set_records(records)
         self._retitle()
@@ -75,7 +75,8 @@ class LayersView(SnapshotView):
 
     def _cells(self, layer: Record) -> list[Text]:
         bound = layer["comm_bound"]
-        compute_bar, exchange_bar = fmt.split_bar(layer["compute_s"], layer["exchange_s"], self._scale, self._bar_width)
+        compute_bar, exchange_bar = fmt.split_bar(layer["compute_s"] or 0.0, layer["exchange_s"] or 0.0, self._scale,
+                                                  self._bar_width)  # null before the first complete step
         return [
             Text(COMM_MARK if bound else "", self.paint("bad")),
             fmt.fit(fmt.literal(layer["name"]), self._name_width),
