@@ -13,7 +13,7 @@ from textual.widgets import Static
 from . import format as fmt
 from .feed import Snapshot
 from .table import ColumnSpec, Record, RecordTable, SortKey
-from .view import SnapshotView
+from .view import TableView
 
 SORT_KEYS = (
     SortKey("detected", lambda r: r["step_detected"], how=("alerts", "degradation")),
@@ -71,7 +71,7 @@ def next_check(alert: Record, link: dict[str, Any] | None) -> Text:
     )
 
 
-class AlertsView(SnapshotView):
+class AlertsView(TableView):
     """A table of alerts; the selected one is explained in full below it."""
 
     def __init__(self) -> None:
@@ -89,10 +89,6 @@ class AlertsView(SnapshotView):
         """Columns are fixed; the full alert is in the panel below the table."""
         self.table.set_columns(COLUMNS)
 
-    @property
-    def table(self) -> RecordTable:
-        """The alert table."""
-        return self.query_one("#alerts-table", RecordTable)
 
     def show(self, snapshot: Snapshot) -> None:
         """Refill the table, attaching to each alert its link and the hours at stake."""
@@ -146,14 +142,5 @@ class AlertsView(SnapshotView):
         )
         self.set_detail(Text.assemble(fmt.literal(alert["kind"]), " · ", fmt.literal(alert["subject"])))
 
-    def how_topics(self) -> tuple[str, ...]:
-        """The figure the rows are ordered by."""
-        return self.table.sort_key.how
 
-    def on_record_table_sort_changed(self) -> None:
-        """Relabel the title with the new order."""
-        self._retitle()
 
-    def on_data_table_row_highlighted(self) -> None:
-        """Explain the alert under the cursor."""
-        self._describe()

@@ -10,7 +10,7 @@ from . import format as fmt
 from .drilldown import WorstRanksScreen
 from .feed import Snapshot
 from .table import ColumnSpec, Record, RecordTable, SortKey
-from .view import SnapshotView
+from .view import TableView
 
 COMM_MARK = "◆ COMM"
 """Symbol and word for a comm-bound layer, so it does not rely on colour."""
@@ -25,7 +25,7 @@ SORT_KEYS = (
 )
 
 
-class LayersView(SnapshotView):
+class LayersView(TableView):
     """One row per layer over the analysis window."""
 
     def __init__(self) -> None:
@@ -38,10 +38,6 @@ class LayersView(SnapshotView):
         yield Static(id="layers-title", classes="view-title")
         yield RecordTable(SORT_KEYS, lambda r: str(r["index"]), self._cells, id="layers-table")
 
-    @property
-    def table(self) -> RecordTable:
-        """The layer table."""
-        return self.query_one("#layers-table", RecordTable)
 
     def show(self, snapshot: Snapshot) -> None:
         """Rescale the bars to the largest layer and refill the table."""
@@ -121,17 +117,8 @@ class LayersView(SnapshotView):
             )
         )
 
-    def how_topics(self) -> tuple[str, ...]:
-        """The figure the rows are ordered by."""
-        return self.table.sort_key.how
 
-    def on_record_table_sort_changed(self) -> None:
-        """Relabel the title with the new order."""
-        self._retitle()
 
-    def on_data_table_row_highlighted(self) -> None:
-        """Follow the cursor in the detail line."""
-        self._describe()
 
     def on_data_table_row_selected(self, event: DataTable.RowSelected) -> None:
         """Drill down to the worst ranks of the chosen layer."""

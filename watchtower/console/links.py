@@ -11,7 +11,7 @@ from . import format as fmt
 from .feed import Snapshot
 from .matrix import LEGEND_WIDTH, Grid, LinkMatrix, matrix_width
 from .table import ColumnSpec, Record, RecordTable, SortKey
-from .view import SnapshotView
+from .view import TableView
 
 SLOW_MARK = "! SLOW"
 """Symbol and word for a slow link, so it does not rely on colour."""
@@ -51,7 +51,7 @@ def link_name(link: Record, short: dict[str, str] | None = None) -> Text:
     return Text.assemble(fmt.literal(short.get(src, src)), ARROW, fmt.literal(short.get(dst, dst)))
 
 
-class LinksView(SnapshotView):
+class LinksView(TableView):
     """Heat map on the left, table on the right; the table's cursor is reversed in the map."""
 
     def __init__(self) -> None:
@@ -76,10 +76,6 @@ class LinksView(SnapshotView):
         if self.snapshot is not None:
             self.show(self.snapshot)
 
-    @property
-    def table(self) -> RecordTable:
-        """The link table."""
-        return self.query_one("#links-table", RecordTable)
 
     def show(self, snapshot: Snapshot) -> None:
         """Refill the map and the table."""
@@ -153,14 +149,5 @@ class LinksView(SnapshotView):
             )
         )
 
-    def how_topics(self) -> tuple[str, ...]:
-        """The figure the rows are ordered by."""
-        return self.table.sort_key.how
 
-    def on_record_table_sort_changed(self) -> None:
-        """Relabel the title with the new order."""
-        self._retitle()
 
-    def on_data_table_row_highlighted(self) -> None:
-        """Follow the cursor in the detail line and the heat map."""
-        self._describe()

@@ -9,7 +9,7 @@ from textual.widgets import Static
 from . import format as fmt
 from .feed import Snapshot
 from .table import ColumnSpec, Record, RecordTable, SortKey
-from .view import SnapshotView
+from .view import TableView
 
 STRAGGLER_MARK = "◆ LAG"
 """Symbol and word for a node hosting a straggler rank, so it does not rely on colour."""
@@ -42,7 +42,7 @@ COLUMNS = (
 )
 
 
-class NodesView(SnapshotView):
+class NodesView(TableView):
     """One row per node, then the straggler ranks the analysis picked out."""
 
     def __init__(self) -> None:
@@ -57,10 +57,6 @@ class NodesView(SnapshotView):
         """Columns are fixed; long names are shown whole in the detail line."""
         self.table.set_columns(COLUMNS)
 
-    @property
-    def table(self) -> RecordTable:
-        """The node table."""
-        return self.query_one("#nodes-table", RecordTable)
 
     def show(self, snapshot: Snapshot) -> None:
         """Refill the table and the straggler line."""
@@ -125,14 +121,5 @@ class NodesView(SnapshotView):
             )
         )
 
-    def how_topics(self) -> tuple[str, ...]:
-        """The figure the rows are ordered by."""
-        return self.table.sort_key.how
 
-    def on_record_table_sort_changed(self) -> None:
-        """Relabel the title with the new order."""
-        self._retitle()
 
-    def on_data_table_row_highlighted(self) -> None:
-        """Follow the cursor in the detail line."""
-        self._describe()

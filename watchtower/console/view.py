@@ -11,6 +11,7 @@ from textual.message import Message
 from textual.reactive import reactive
 
 from .feed import Snapshot
+from .table import RecordTable
 
 
 class SnapshotView(Vertical):
@@ -60,3 +61,31 @@ class SnapshotView(Vertical):
         """Remember and announce the detail of the current selection."""
         self.detail = text
         self.post_message(self.DetailChanged(self, text))
+
+
+class TableView(SnapshotView):
+    """A view built around one record table (``#<id>-table``): the sort order names the figure in use, and
+    the title and the detail line follow the order and the cursor."""
+
+    @property
+    def table(self) -> RecordTable:
+        """The view's table."""
+        return self.query_one(f"#{self.id}-table", RecordTable)
+
+    def how_topics(self) -> tuple[str, ...]:
+        """The figure the rows are ordered by."""
+        return self.table.sort_key.how
+
+    def on_record_table_sort_changed(self) -> None:
+        """Relabel the title with the new order."""
+        self._retitle()
+
+    def on_data_table_row_highlighted(self) -> None:
+        """Follow the cursor in the detail line."""
+        self._describe()
+
+    def _retitle(self) -> None:
+        raise NotImplementedError
+
+    def _describe(self) -> None:
+        raise NotImplementedError
