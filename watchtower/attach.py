@@ -11,6 +11,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import stat
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -18,13 +19,25 @@ from typing import Any
 
 import zmq
 
+from watchtower.errors import UsageError
+
 ASK_TIMEOUT_MS = 500
 
 
 def run_dir() -> Path:
-    """The folder where collectors announce themselves (created private to this user)."""
+    """The folder where collectors announce themselves, created private to this user.
+
+    An existing folder must be ours and closed to others: in a shared /tmp someone could otherwise create
+    it first and plant sockets that point our consoles at their recordings."""
     folder = Path(os.environ.get("WATCHTOWER_RUN_DIR") or f"/tmp/watchtower-{os.getuid()}")
-    folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+    try:
+        folder.mkdir(mode=0o700, parents=True, exist_ok=True)
+        info = folder.lstat()
+    except OSError as exc:
+        raise UsageError(f"cannot use the run folder {folder}: {exc.strerror}") from None
+    if not stat.S_ISDIR(info.st_mode) or info.st_uid != os.getuid() or info.st_mode & 0o077:
+        raise UsageError(f"the run folder {folder} is not a directory private to you (owner and mode 0700); "
+                         "remove it or set WATCHTOWER_RUN_DIR")
     return folder
 
 

@@ -21,7 +21,7 @@ from watchtower.console.feed import Feed
 from watchtower.errors import UsageError, WatchtowerError
 from watchtower.ingest import Ingest
 from watchtower.keys import HeadKeys, load_head
-from watchtower.recording import NotARecording, Recorder, RecordingError
+from watchtower.recording import NotARecording, Recorder, RecordingError, RecordingReader
 
 if TYPE_CHECKING:
     from watchtower.metrics import MetricsServer
@@ -253,7 +253,9 @@ def _watch(args: argparse.Namespace) -> int:
         recording, security = running[0].recording, running[0].security
     try:
         feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window)
-    except (OSError, RecordingError) as exc:
+    except OSError as exc:
+        raise UsageError(f"cannot follow {recording}: {exc.strerror}") from None
+    except RecordingError as exc:
         raise UsageError(f"cannot follow {recording}: {exc}") from None
     return _run_console(feed, _metrics(args.metrics))
 
@@ -276,14 +278,31 @@ def _demo(args: argparse.Namespace) -> int:
                     run_console=_run_console)
 
 
+def _resume(path: Path) -> Ingest:
+    """A collector restarted on its recording first reads what it already holds, so its loss figures (and
+    the summary, metrics and consoles built on them) count the whole run, not just what came since."""
+    ingest = Ingest()
+    if not path.exists() or path.stat().st_size == 0:
+        return ingest
+    if path.suffix == ".gz":
+        raise UsageError(f"{path} is compressed: record to a new file")
+    try:
+        with RecordingReader(path) as reader:
+            for received_ns, frames in reader:
+                ingest.feed(received_ns, frames)
+    except RecordingError as exc:
+        raise UsageError(f"{path} exists and cannot be appended to: {exc}") from None
+    return ingest
+
+
 def _collect(args: argparse.Namespace) -> int:
     from watchtower.attach import Beacon
 
     security, keys = _listen(args.listen, args.insecure, args.keys)
     metrics = _metrics(args.metrics)
     try:
+        ingest = _resume(args.record)
         recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
-        ingest = Ingest()
         collector = _collector(args.listen, ingest, recorder, keys)
     except UsageError:
         if metrics is not None:

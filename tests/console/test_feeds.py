@@ -153,7 +153,7 @@ def test_following_a_recording_picks_up_appended_records_whole(tmp_path: Path) -
 
 def test_a_running_collect_is_found_and_a_stale_socket_removed(tmp_path: Path, endpoint: str) -> None:
     run = tmp_path / "run"
-    run.mkdir()
+    run.mkdir(mode=0o700)
     (run / "collect-999999999.sock").touch()  # left behind by a collector that died
     process = subprocess.Popen([sys.executable, "-m", "watchtower.cli", "collect", "--listen", endpoint,
                                 "--record", str(tmp_path / "live.wtrace")],
@@ -243,3 +243,17 @@ def test_live_demo_watches_real_ranks_and_stops_them_on_exit() -> None:
     assert seen["children"] == 3 and {link["src"] for link in seen["snapshot"]["links"]} == {
         "local-0", "local-1", "local-2"}
     assert psutil.Process().children() == []  # every rank it started is gone
+
+
+def test_a_run_folder_open_to_others_is_refused(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from watchtower.attach import run_dir
+    from watchtower.errors import UsageError
+
+    folder = tmp_path / "run"
+    folder.mkdir(mode=0o777)
+    folder.chmod(0o777)  # as a stranger could leave it in a shared /tmp
+    monkeypatch.setenv("WATCHTOWER_RUN_DIR", str(folder))
+    with pytest.raises(UsageError, match="private"):
+        run_dir()
+    folder.chmod(0o700)
+    assert run_dir() == folder

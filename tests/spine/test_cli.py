@@ -72,3 +72,20 @@ def test_comparing_two_recordings(tmp_path: Path, capsys: pytest.CaptureFixture[
     assert main(["report", str(early), str(DEMO), "--json"]) == 0
     comparison = json.loads(capsys.readouterr().out)
     assert comparison["step_s"]["ratio"] > 1.0
+
+
+def test_collect_restarted_on_its_recording_counts_the_whole_run(tmp_path: Path, endpoint: str) -> None:
+    from agent import Probe
+    from agent.clock import ManualClock
+    from watchtower.recording import Recorder
+
+    probe = Probe(0, 1, "n0", None, clock=ManualClock())
+    for _ in range(5):
+        probe.end_step()
+    path = tmp_path / "run.wtrace"
+    with Recorder(path) as recorder:  # the first life of the collector: everything but frame 3 arrived
+        recorder.write_many([(i, frames) for i, frames in enumerate(probe.sent_frames) if i != 3])
+    result = run("collect", "--listen", endpoint, "--record", str(path), "--duration", "0.2")
+    assert result.returncode == 0, result.stderr
+    assert f"{len(probe.sent_frames) - 1} frames, 0 bad, 1 missing" in result.stdout
+    assert run("collect", "--listen", endpoint, "--record", str(DEMO), "--duration", "0.2").returncode == 2
