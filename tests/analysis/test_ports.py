@@ -172,3 +172,12 @@ def test_a_way_out_held_back_by_a_far_slower_way_in_is_not_a_second_culprit(rng:
     for pair in ((f"n{X - 1}", f"n{X}"), (f"n{X + 1}", f"n{X}"), (f"n{X}", f"n{X - 1}"), (f"n{X}", f"n{X + 1}")):
         assert links[pair]["slow"] and links[pair]["port"] == f"n{X} in", pair  # out links: slowed by the way in
     assert sum(lk["slow"] for lk in out["links"]) == 4
+
+
+def test_link_models_use_the_newest_whole_steps_under_the_cap() -> None:
+    from watchtower.analysis.links import _newest_steps
+
+    steps = np.repeat(np.arange(5), [3, 3, 4, 2, 2])  # 14 transfers over five steps
+    assert _newest_steps(steps, 100).all()
+    assert steps[_newest_steps(steps, 8)].tolist() == [2, 2, 2, 2, 3, 3, 4, 4]  # whole steps, newest first
+    assert steps[_newest_steps(steps, 1)].tolist() == [4, 4]  # never less than one step

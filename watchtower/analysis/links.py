@@ -20,6 +20,9 @@ from watchtower.cluster import Cluster
 SLOW_FRACTION = 0.5  # common practice, no source: a link under half its nominal rate is broken, not busy
 WAITS_UNKNOWN_QUANTILE = 0.25  # per-size-bin time quantile when waiting could not be split off; no source
 WAITS_KNOWN_QUANTILE = 0.5  # the same when the probe knew when the peer was ready; no source
+# Link models and their sharing correction are fitted on the newest whole steps holding at most this many
+# transfers: plenty for a fit, and it keeps the analysis of a 4096-rank window under a second. No source.
+MAX_FIT_TRANSFERS = 200_000
 
 
 @dataclass(frozen=True)
@@ -78,14 +81,17 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     link, pairs, n_links = paired.link, paired.pairs, len(paired.pairs)
     secs, nbytes, unshared = paired.seconds, paired.nbytes, paired.unshared
     n_nodes, names = len(window.nodes), window.nodes
-    fit = fit_hockney(link, nbytes, unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
+    fitted = paired.fitted
+    fit_link, fit_bytes, fit_unshared = link[fitted], nbytes[fitted], unshared[fitted]
+    fit = fit_hockney(fit_link, fit_bytes, fit_unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
     # Where the probe split waiting off (the peer's readiness was known), what is left is two-sided noise
     # and the odd late receiver: the bins' medians fit it without the low quartile's optimism. Where waits
     # are unknown, waiting dominates the upper part of each bin and the low quartile is the safer choice.
-    waits_known = np.bincount(link, weights=np.isfinite(tr.wait_s[known]), minlength=n_links) >= \
-        0.5 * np.bincount(link, minlength=n_links)
+    waits_known = np.bincount(fit_link, weights=np.isfinite(tr.wait_s[known][fitted]), minlength=n_links) >= \
+        0.5 * np.bincount(fit_link, minlength=n_links)
     if waits_known.any():
-        fit = fit.where(waits_known, fit_hockney(link, nbytes, unshared, n_links, quantile=WAITS_KNOWN_QUANTILE))
+        fit = fit.where(waits_known, fit_hockney(fit_link, fit_bytes, fit_unshared, n_links,
+                                                 quantile=WAITS_KNOWN_QUANTILE))
     total_bytes = np.bincount(link, weights=nbytes, minlength=n_links)
     busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_links)
     count = np.bincount(link, minlength=n_links)
@@ -147,7 +153,8 @@ class _Paired:
     pairs: np.ndarray  # src node * n_nodes + dst node
     nbytes: np.ndarray
     seconds: np.ndarray  # transfer time as measured
-    unshared: np.ndarray  # the same as if it had had its bottleneck port to itself
+    unshared: np.ndarray  # the same as if it had had its bottleneck port to itself (NaN outside ``fitted``)
+    fitted: np.ndarray  # bool: the transfers the link models are fitted on (see MAX_FIT_TRANSFERS)
 
 
 def _pair_transfers(window: Window, cluster: Cluster) -> _Paired:
@@ -164,8 +171,22 @@ def _pair_transfers(window: Window, cluster: Cluster) -> _Paired:
     nbytes = np.asarray(tr.nbytes[known], np.float64)
     node_nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in window.nodes],
                             np.float64)
-    unshared = _unshared(window, known, link, pairs, nbytes, secs, node_nominal)
-    return _Paired(known, di, step_idx, link, pairs, nbytes, secs, unshared)
+    fitted = _newest_steps(step_idx, MAX_FIT_TRANSFERS)
+    in_window = known.copy()
+    in_window[known] = fitted
+    unshared = np.full(len(secs), np.nan)
+    unshared[fitted] = _unshared(window, in_window, link[fitted], pairs, nbytes[fitted], secs[fitted], node_nominal)
+    return _Paired(known, di, step_idx, link, pairs, nbytes, secs, unshared, fitted)
+
+
+def _newest_steps(step_idx: np.ndarray, limit: int) -> np.ndarray:
+    """Which transfers belong to the newest whole steps holding at most ``limit`` of them (one step at least):
+    whole steps, so that the flows sharing a port at any moment are all there."""
+    if len(step_idx) <= limit:
+        return np.ones(len(step_idx), bool)
+    from_newest = np.cumsum(np.bincount(step_idx)[::-1])
+    steps = max(1, int(np.searchsorted(from_newest, limit, side="right")))
+    return step_idx >= len(from_newest) - steps
 
 
 def link_rate_series(window: Window, cluster: Cluster) -> RunSeries:

@@ -161,7 +161,8 @@ HOW: dict[str, tuple[str, str]] = {
     "layers.comm_fraction_worst": ("highest E / (C + E) of any single rank", "definition"),
     "layers.comm_bound": ("comm fraction above the threshold (default 0.5)", "common practice, no source"),
     "links.bandwidth_Bps": ("β of t(n) = α + n/β, least squares through each size bin's median time (its 25 % "
-                            "quantile when most waits are unknown), "
+                            "quantile when most waits are unknown), over the window's newest whole steps holding "
+                            "at most 200,000 transfers, "
                             "fitted on times with the byte-moving part (time − α) × the transfer's share of its "
                             "bottleneck port: the rate with the path to itself, not a concurrent flow's share",
                             "Hockney (1994); share: see links.concurrency"),
