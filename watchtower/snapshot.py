@@ -13,6 +13,7 @@ import numpy as np
 
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.summary import analyse, analysis_to_json
+from watchtower.analysis.summary import json_float as _f
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
 from watchtower.store import NodeInfo
@@ -116,10 +117,3 @@ def _nic_rates(nics: tuple[str, ...], values: np.ndarray) -> dict[str, float | N
         return {"nic_out_Bps": None, "nic_in_Bps": None}
     keep = np.array([name != LOOPBACK_NIC for name in nics])
     return {"nic_out_Bps": float(values[0, keep].sum()), "nic_in_Bps": float(values[1, keep].sum())}
-
-
-def _f(x: float | None) -> float | None:
-    if x is None:
-        return None
-    x = float(x)
-    return x if math.isfinite(x) else None

@@ -225,12 +225,15 @@ HOW: dict[str, tuple[str, str]] = {
 }
 
 
-def _f(x: Any) -> float | None:
+def json_float(x: Any) -> float | None:
     """A JSON-safe float: NaN, infinities and missing values become None."""
     if x is None:
         return None
     x = float(x)
     return x if math.isfinite(x) else None
+
+
+_f = json_float  # the many uses below read better short
 
 
 def analysis_to_json(a: Analysis) -> dict[str, Any]:
