@@ -33,6 +33,7 @@ from typing import Any
 
 import numpy as np
 import zmq
+from frames import recv_table
 
 from agent import wire
 from watchtower import feeds
@@ -54,13 +55,7 @@ def sender(endpoint: str, ranks: range, world: int, layers: int, t0: float, seco
     sock.setsockopt(zmq.SNDHWM, 0)
     sock.connect(endpoint)
     layer_ns = {rank: rng.integers(100_000, 2_000_000, (2, layers)) for rank in ranks}
-    table = np.zeros((len(wire.EXCHANGE_COLUMNS), 2), np.int64)
-    table[wire.X_LAYER] = [layers // 3, 2 * layers // 3]
-    table[wire.X_OP] = wire.Op.RECV
-    table[wire.X_NBYTES] = 1 << 22
-    table[wire.X_START] = [1_000_000, 5_000_000]
-    table[wire.X_END] = [3_000_000, 6_500_000]
-    table[wire.X_WAIT] = wire.UNKNOWN_WAIT
+    table = recv_table(layers)
     for rank in ranks:
         sock.send_multipart([b"", *wire.encode_schema(rank + 1, 0, time.time_ns(), schema_id=1, rank=rank,
                                                        world=world, node=f"node{rank // RANKS_PER_NODE:04d}",

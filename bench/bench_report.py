@@ -21,6 +21,7 @@ import time
 from pathlib import Path
 
 import numpy as np
+from frames import recv_table
 
 from agent import wire
 from watchtower.recording import Recorder
@@ -32,13 +33,7 @@ def write_recording(path: Path, gigabytes: float, ranks: int, layers: int) -> in
     """Steps of every rank until the file holds ``gigabytes``; returns the number of steps written."""
     rng = np.random.default_rng(5)
     names = [f"layer.{i:03d}" for i in range(layers)]
-    table = np.zeros((len(wire.EXCHANGE_COLUMNS), 2), np.int64)
-    table[wire.X_LAYER] = [layers // 3, 2 * layers // 3]
-    table[wire.X_OP] = wire.Op.RECV
-    table[wire.X_NBYTES] = 1 << 22
-    table[wire.X_START] = [1_000_000, 5_000_000]
-    table[wire.X_END] = [3_000_000, 6_500_000]
-    table[wire.X_WAIT] = wire.UNKNOWN_WAIT
+    table = recv_table(layers)
     layer_ns = rng.integers(100_000, 2_000_000, (ranks, 2, layers))
     limit = int(gigabytes * 1e9)
     clock = 1_700_000_000_000_000_000

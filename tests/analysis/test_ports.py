@@ -181,3 +181,17 @@ def test_link_models_use_the_newest_whole_steps_under_the_cap() -> None:
     assert _newest_steps(steps, 100).all()
     assert steps[_newest_steps(steps, 8)].tolist() == [2, 2, 2, 2, 3, 3, 4, 4]  # whole steps, newest first
     assert steps[_newest_steps(steps, 1)].tolist() == [4, 4]  # never less than one step
+
+
+def test_a_link_into_a_node_whose_way_out_failed_names_it_through_the_acknowledgements(
+        rng: np.random.Generator) -> None:
+    # n4's two links out drop from step 70, and so does n3→n4: its acknowledgements leave through n4's way out.
+    window = window_of(ring_transfers(np.full(N, C), np.full(N, C), rng))
+    n = 100
+    pairs = ((4, 3), (4, 5), (3, 4), (0, 1))
+    rate = np.full((n, 4), 1e9) * (1 + 0.01 * rng.standard_normal((n, 4)))
+    rate[70:, :3] *= 0.3
+    series = RunSeries(np.arange(n), np.ones(n), pairs, rate * 0.01, np.full((n, 4), 0.01))
+    alerts = {al["subject"]: al for al in analysis_to_json(analyse(window, series, CLUSTER))["alerts"]}
+    assert set(alerts) == {"n4→n3", "n4→n5", "n3→n4"}
+    assert alerts["n3→n4"]["port"] == "n4 out (acknowledgements)" and alerts["n4→n3"]["port"] == "n4 out"

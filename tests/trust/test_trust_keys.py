@@ -6,14 +6,13 @@ import os
 import signal
 import stat
 import threading
-import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 import zmq
 from conftest import KeyFolder
-from trust_helpers import AgentProc, kill, recorded, settle, start_collector, wait_for
+from trust_helpers import AgentProc, kill, recorded, run_steps, settle, start_collector, wait_for
 
 from agent import Probe
 from agent import cli as agent_cli
@@ -39,18 +38,6 @@ def keyed(keys: KeyFolder, endpoint: str, zmq_context: zmq.Context) -> Iterator[
     stop.set()
     thread.join()
     collector.close()
-
-
-def run_steps(probe: Probe, steps: int = STEPS) -> float:
-    """Take steps; return the slowest ``end_step`` in seconds."""
-    slowest = 0.0
-    for _ in range(steps):
-        with probe.compute("layer"):
-            pass
-        began = time.perf_counter()
-        probe.end_step()
-        slowest = max(slowest, time.perf_counter() - began)
-    return slowest
 
 
 def stranger(folder: Path) -> Path:
@@ -82,7 +69,7 @@ def test_others_are_refused_counted_and_never_block(who: str, keyed: Collector, 
     else:
         agent_keys = None
     probe = Probe(0, 1, "node7", keyed.bound, context=zmq_context, curve_keys=agent_keys, queue_frames=8)
-    slowest = run_steps(probe)
+    slowest = run_steps(probe, STEPS)
     wait_for(lambda: keyed.ingest.ledger.rejected[who] > 0, f"a refusal counted as {who}")
     assert slowest < 0.5 and probe.dropped > STEPS / 2  # bounded queue, then counted drops: never blocked
     probe.close()

@@ -5,13 +5,12 @@ from __future__ import annotations
 
 import gzip
 import threading
-import time
 from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 import zmq
-from trust_helpers import ingest, recorded, wait_for
+from trust_helpers import ingest, recorded, run_steps, wait_for
 
 from agent import Probe, wire
 from agent.records import RecordWriter
@@ -22,18 +21,6 @@ from watchtower.merge import merge
 from watchtower.recording import Recorder, RecordingReader
 
 QUEUE = 16
-
-
-def steps(probe: Probe, n: int) -> float:
-    """Take ``n`` steps of one layer; return the slowest ``end_step`` in seconds."""
-    slowest = 0.0
-    for _ in range(n):
-        with probe.compute("layer"):
-            pass
-        began = time.perf_counter()
-        probe.end_step()
-        slowest = max(slowest, time.perf_counter() - began)
-    return slowest
 
 
 @pytest.fixture
@@ -59,12 +46,12 @@ def later_collector(endpoint: str, tmp_path: Path, zmq_context: zmq.Context) -> 
 def test_collector_down_then_back(endpoint: str, later_collector: callable, zmq_context: zmq.Context,
                                   tmp_path: Path) -> None:
     probe = Probe(0, 1, "node0", endpoint, context=zmq_context, queue_frames=QUEUE, spool=tmp_path / "r0.spool")
-    slowest = steps(probe, 2000)
+    slowest = run_steps(probe, 2000)
     held = probe.seq - probe.dropped
     assert slowest < 0.5 and held <= 2 * QUEUE  # nothing listens: the bounded queue, then counted drops
     collector = later_collector()
     wait_for(lambda: collector.ingest.ledger.frames == held, "the queued frames")
-    steps(probe, 3)
+    run_steps(probe, 3)
     wait_for(lambda: collector.ingest.ledger.frames == probe.seq - probe.dropped, "the steps after the return")
     last = [m for _, m in ((t, wire.decode(f)) for t, f in _frames(tmp_path / "head.wtrace"))
             if isinstance(m, wire.Step)][-1]
@@ -83,9 +70,9 @@ def _frames(path: Path) -> list[tuple[int, list[bytes]]]:
 
 def test_a_failing_spool_stops_spooling_not_training(tmp_path: Path) -> None:
     probe = Probe(0, 1, "node0", None, spool=tmp_path / "r0.spool")
-    steps(probe, 2)
+    run_steps(probe, 2)
     probe._spool._file = open("/dev/full", "wb", buffering=0)  # type: ignore[union-attr]  # noqa: SIM115
-    steps(probe, 2)
+    run_steps(probe, 2)
     assert probe.spool_error is not None and "spool stopped" in probe.spool_error
     assert len(probe.sent_frames) == probe.seq  # the frames still went out
     probe.close()
@@ -95,7 +82,7 @@ def test_spool_opening_an_existing_spool_appends_after_a_marker(tmp_path: Path) 
     spool = tmp_path / "r0.spool"
     for _ in range(2):  # a rank restarted with the same --spool
         probe = Probe(0, 1, "node0", None, spool=spool)
-        steps(probe, 3)
+        run_steps(probe, 3)
         probe.close()
     with RecordingReader(spool) as reader:
         assert sum(1 for _ in reader) == 2 * 4 and reader.tail.resumes == 1 and reader.tail.clean

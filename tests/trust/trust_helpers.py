@@ -12,7 +12,7 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
-from agent import wire
+from agent import Probe, wire
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader
 
@@ -131,3 +131,15 @@ class AgentProc:
             kill(self.proc)
         for stream in (self.proc.stdin, self.proc.stdout):
             stream.close()  # type: ignore[union-attr]
+
+
+def run_steps(probe: Probe, steps: int) -> float:
+    """Take ``steps`` steps of one layer; return the slowest ``end_step`` in seconds (what training feels)."""
+    slowest = 0.0
+    for _ in range(steps):
+        with probe.compute("layer"):
+            pass
+        began = time.perf_counter()
+        probe.end_step()
+        slowest = max(slowest, time.perf_counter() - began)
+    return slowest

@@ -170,7 +170,9 @@ def name_alert_ports(alerts: Sequence[Alert], links: Sequence[LinkStats]) -> tup
 
     The port is the one that explains the link in this window when there is one; otherwise a shared cause:
     when every network link out of the sender (two or more) raised an alert, its way out, else when every
-    link into the receiver did, its way in. A lone link's drop names no port.
+    link into the receiver did, its way in; failing that, the port the link's acknowledgements cross when
+    every link through it alerted (the receiver's way out, or the sender's way in). A lone link's drop
+    names no port.
     """
     net = [lk for lk in links if not lk.local]
     by_subject = {f"{lk.src_name}→{lk.dst_name}": lk for lk in net}
@@ -188,4 +190,11 @@ def _shared_cause(lk: LinkStats, net: Sequence[LinkStats], alerted: set[str]) ->
         peers = [f"{x.src_name}→{x.dst_name}" for x in net if same(x) == side]
         if len(peers) >= 2 and all(s in alerted for s in peers):
             return f"{lk.src_name if direction == 'out' else lk.dst_name} {direction}"
+    # The link's acknowledgements travel the other way: every link out of its receiver (or into its sender)
+    # slowing too points at that node's port, which the acknowledgements queue behind.
+    for side, same, name, direction in ((lk.dst, lambda x: x.src, lk.dst_name, "out"),
+                                        (lk.src, lambda x: x.dst, lk.src_name, "in")):
+        peers = [f"{x.src_name}→{x.dst_name}" for x in net if same(x) == side]
+        if len(peers) >= 2 and all(s in alerted for s in peers):
+            return f"{name} {direction} (acknowledgements)"
     return None
