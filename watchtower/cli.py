@@ -288,8 +288,7 @@ def _resume(path: Path) -> Ingest:
         raise UsageError(f"{path} is compressed: record to a new file")
     try:
         with RecordingReader(path) as reader:
-            for received_ns, frames in reader:
-                ingest.feed(received_ns, frames)
+            ingest.feed_all(reader)
     except RecordingError as exc:
         raise UsageError(f"{path} exists and cannot be appended to: {exc}") from None
     return ingest

@@ -103,10 +103,7 @@ class AttachFeed:
     def catch_up(self) -> int:
         """Ingest every complete record appended since the last call; returns how many."""
         tail = Tail(consumed=self._offset)
-        count = 0
-        for received_ns, frames in resume_records(self.recording, tail):
-            self.ingest.feed(received_ns, frames)
-            count += 1
+        count = self.ingest.feed_all(resume_records(self.recording, tail))
         self._offset = tail.consumed  # a half-written last record is read again next time, whole
         return count
 

@@ -6,6 +6,8 @@ into the store. Live and replay differ only in where the frames come from.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
+
 from agent import wire
 from watchtower.ledger import Ledger
 from watchtower.store import Store
@@ -47,3 +49,11 @@ class Ingest:
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
         return message
+
+    def feed_all(self, records: Iterable[tuple[int, list[bytes]]]) -> int:
+        """Feed every (received_ns, frames) record, e.g. a recording being read; returns how many."""
+        count = 0
+        for received_ns, frames in records:
+            self.feed(received_ns, frames)
+            count += 1
+        return count

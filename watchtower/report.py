@@ -25,8 +25,7 @@ def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> d
     ingest = Ingest()
     try:
         with RecordingReader(path) as reader:
-            for received_ns, frames in reader:
-                ingest.feed(received_ns, frames)
+            ingest.feed_all(reader)
             meta, tail = reader.meta, reader.tail
     except RecordingError as exc:
         raise UsageError(str(exc)) from None

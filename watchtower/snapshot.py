@@ -48,9 +48,9 @@ def build_snapshot(
 ) -> dict[str, Any]:
     store = ingest.store
     meta = meta or {}
-    window = store.window(last=window_steps)
+    history = store.window()  # every step still held, for degradation; the figures cover its newest steps
+    window = history if window_steps is None else history.last(window_steps)
     series = store.series()
-    history = window if window_steps is None else store.window()  # every step still held, for degradation
     snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes),
                                         history=history))
     ranks_by_node: dict[int, list[int]] = {}

@@ -297,13 +297,12 @@ class Store:
                 return step
         return next(reversed(self._slabs)) if self._slabs else -1
 
-    def window(self, last: int | None = None) -> Window:
-        """The recent steps as a Window: every step up to the newest one all known ranks reported."""
+    def window(self) -> Window:
+        """The steps held in full as a Window: every step up to the newest one all known ranks reported
+        (``Window.last`` narrows it to the newest few)."""
         n_layers = len(self.layers)
         newest = self.newest_complete_step()
         steps = [s for s in self._slabs if s <= newest]
-        if last is not None:
-            steps = steps[-last:]
         rank_ids = sorted(self._row)
         rows = np.array([self._row[r] for r in rank_ids], dtype=np.int64)
         shape = (len(steps), len(rank_ids), n_layers)

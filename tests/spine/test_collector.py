@@ -113,8 +113,7 @@ def test_bad_frames_are_counted_and_the_collector_keeps_going(running: tuple[Col
     probe.close()
     replayed = Ingest()
     with RecordingReader(path) as reader:  # the recording keeps what was rejected, so replay counts it too
-        for received_ns, frames in reader:
-            replayed.feed(received_ns, frames)
+        replayed.feed_all(reader)
     assert replayed.ledger.bad == collector.ingest.ledger.bad and replayed.steps == 1
 
 
@@ -135,3 +134,20 @@ def test_endpoint_parsing(url: str, loopback: bool) -> None:
 def test_bad_endpoints_are_refused(url: str) -> None:
     with pytest.raises(EndpointError):
         parse_endpoint(url, binding=True)
+
+
+def test_the_newest_steps_of_a_window_keep_only_their_transfers() -> None:
+    from watchtower.store import Store
+
+    store = Store()
+    probe = Probe(0, 2, "a", None, clock=ManualClock())
+    drive(probe, probe.clock, 6)  # type: ignore[arg-type]
+    ingest = Ingest(store)
+    for frames in probe.sent_frames:
+        ingest.feed(0, frames)
+    whole = store.window()
+    newest = whole.last(2)
+    assert newest.steps.tolist() == [4, 5] and newest.compute_s.shape == (2, 1, 2)
+    assert np.array_equal(newest.compute_s, whole.compute_s[4:])
+    assert sorted(set(newest.transfers.step.tolist())) == [4, 5] and len(newest.transfers) == 2
+    assert whole.last(10) is whole

@@ -68,8 +68,7 @@ def ingest(*paths: Path) -> Ingest:
     result = Ingest()
     for path in paths:
         with RecordingReader(path) as reader:
-            for received_ns, frames in reader:
-                result.feed(received_ns, frames)
+            result.feed_all(reader)
     return result
 
 

@@ -7,7 +7,7 @@ in that step's cells.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields, replace
 
 import numpy as np
 
@@ -86,6 +86,18 @@ class Window:
     def shape(self) -> tuple[int, int, int]:
         return self.compute_s.shape  # type: ignore[return-value]
 
+    def last(self, steps: int) -> Window:
+        """The newest ``steps`` steps of this window (views of its cubes; the transfers of those steps)."""
+        cut = len(self.steps) - steps
+        if cut <= 0:
+            return self
+        first = self.steps[cut]
+        keep_t, keep_c = self.transfers.step >= first, self.collectives.step >= first
+        return replace(self, steps=self.steps[cut:], compute_s=self.compute_s[cut:],
+                       exchange_s=self.exchange_s[cut:], step_s=self.step_s[cut:],
+                       transfers=Transfers(*(a[keep_t] for a in _columns(self.transfers))),
+                       collectives=Collectives(*(a[keep_c] for a in _columns(self.collectives))))
+
     def rank_index(self, rank_ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Positions of rank ids in ``ranks`` (int64) and a mask of the ids this window knows."""
         return _index_in(np.asarray(self.ranks), rank_ids)
@@ -134,3 +146,8 @@ class RunSeries:
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where((self.link_bytes > 0) & (self.link_transfer_s > 0),
                             self.link_bytes / self.link_transfer_s, np.nan)
+
+
+def _columns(columns: Transfers | Collectives) -> tuple[np.ndarray, ...]:
+    """A columnar table's arrays in field order (``dataclasses.astuple`` would deep-copy them)."""
+    return tuple(getattr(columns, f.name) for f in fields(columns))
