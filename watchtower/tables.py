@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from watchtower.console.format import count, duration, hours, number, percent, rate, seconds, visible
+from watchtower.units import count, duration, hours, number, percent, rate, seconds, visible
 
 
 def _table(headers: Sequence[str], rows: list[Sequence[str]], right: set[int]) -> list[str]:

@@ -1,0 +1,118 @@
+"""Figures and names as plain text: units that keep three significant digits, and wire names made safe.
+
+Shared by the console and the plain-text report, so both say "1.22 GB/s" and "14.3 µs" the same way.
+"""
+
+from __future__ import annotations
+
+import unicodedata
+from collections.abc import Sequence
+
+MISSING = "—"
+"""Shown for a figure that could not be computed (null in the snapshot)."""
+
+# Character classes that would move the cursor, recolour, reorder or hide text on a terminal.
+_UNSAFE_CATEGORIES = frozenset({"Cc", "Cf", "Cs", "Co", "Zl", "Zp"})
+
+
+def visible(raw: str) -> str:
+    """Replace control and format characters by backslash escapes so they are seen, not obeyed."""
+    out: list[str] = []
+    for char in raw:
+        if unicodedata.category(char) in _UNSAFE_CATEGORIES:
+            out.append(char.encode("unicode_escape").decode("ascii"))
+        else:
+            out.append(char)
+    return "".join(out)
+
+
+def _scaled(value: float, units: Sequence[tuple[float, str]]) -> str:
+    for factor, unit in units:
+        if abs(value) >= factor:
+            return _three_digits(value / factor, unit)
+    factor, unit = units[-1]
+    return _three_digits(value / factor, unit)
+
+
+def _three_digits(scaled: float, unit: str) -> str:
+    """Three significant digits with trailing zeros kept, so columns of figures line up."""
+    if abs(scaled) >= 99.95:
+        return f"{scaled:.0f} {unit}"
+    if abs(scaled) >= 9.995:
+        return f"{scaled:.1f} {unit}"
+    return f"{scaled:.2f} {unit}"
+
+
+def rate(bytes_per_s: float | None) -> str:
+    """Bytes per second in decimal units (network rates are quoted in powers of ten)."""
+    if bytes_per_s is None:
+        return MISSING
+    return _scaled(bytes_per_s, [(1e12, "TB/s"), (1e9, "GB/s"), (1e6, "MB/s"), (1e3, "kB/s"), (1.0, "B/s")])
+
+
+def seconds(value: float | None) -> str:
+    """A short duration with the unit that keeps three significant digits."""
+    if value is None:
+        return MISSING
+    if value == 0:
+        return "0 s"
+    return _scaled(value, [(1.0, "s"), (1e-3, "ms"), (1e-6, "µs"), (1e-9, "ns")])
+
+
+def signed_seconds(value: float | None) -> str:
+    """A clock offset, whose sign says which way the node's clock is off."""
+    if value is None:
+        return MISSING
+    return ("+" if value >= 0 else "−") + seconds(abs(value))
+
+
+def duration(value: float | None) -> str:
+    """A long span (time to finish) in days, hours and minutes."""
+    if value is None:
+        return MISSING
+    total = round(value)
+    days, rest = divmod(total, 86400)
+    hours, rest = divmod(rest, 3600)
+    minutes, secs = divmod(rest, 60)
+    if days:
+        return f"{days}d {hours}h"
+    if hours:
+        return f"{hours}h {minutes:02d}m"
+    if minutes:
+        return f"{minutes}m {secs:02d}s"
+    return f"{secs}s"
+
+
+def percent(fraction: float | None) -> str:
+    """A fraction as a whole percentage."""
+    if fraction is None:
+        return MISSING
+    return f"{fraction * 100:.0f}%"
+
+
+def plain_percent(value: float | None) -> str:
+    """A value already in percent (psutil's CPU and memory figures)."""
+    if value is None:
+        return MISSING
+    return f"{value:.0f}%"
+
+
+def hours(value: float | None) -> str:
+    """Hours of run time, with one decimal below ten hours."""
+    if value is None:
+        return MISSING
+    return f"{value:.1f} h" if abs(value) < 10 else f"{value:.0f} h"
+
+
+def number(value: float | None, digits: int = 1) -> str:
+    """A plain figure (speedup in workers, a score) with a true minus sign."""
+    if value is None:
+        return MISSING
+    return f"{value:.{digits}f}".replace("-", "−")
+
+
+def count(value: int | None) -> str:
+    """An exact count with thousands separators."""
+    if value is None:
+        return MISSING
+    return f"{value:,}"
