@@ -16,6 +16,7 @@ import socket
 import sys
 import threading
 from collections.abc import Callable, Sequence
+from importlib import metadata
 from typing import NoReturn
 
 from agent.daemon import DaemonError, default_local_endpoint, run_daemon
@@ -23,10 +24,19 @@ from agent.keys import KeyFileError, curve_keys
 from agent.workload import ConnectError, WorkloadConfig, WorkloadError, run_workload
 
 PROG = "watchtower-agent"
+DISTRIBUTION = "watchtower-fabric"
 USAGE_ERROR = 2
 RUN_ERROR = 1
 MAX_IPC_PATH = 107  # sun_path holds 108 bytes including the terminating NUL
 _HOSTNAME = re.compile(r"^(?=.{1,253}$)[A-Za-z0-9_]([A-Za-z0-9_-]{0,62})(\.[A-Za-z0-9_]([A-Za-z0-9_-]{0,62}))*\.?$")
+
+
+def version() -> str:
+    """The installed distribution's version (the node side cannot import ``watchtower`` to ask it)."""
+    try:
+        return metadata.version(DISTRIBUTION)
+    except metadata.PackageNotFoundError:
+        return "(not installed)"
 
 
 class UsageError(Exception):
@@ -116,32 +126,38 @@ def _key_options(parser: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog=PROG, description="Node side of Watchtower.")
-    commands = parser.add_subparsers(dest="command", required=True, metavar="{run,workload}")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {version()}")
+    commands = parser.add_subparsers(dest="command", metavar="{run,workload}")
 
     run = commands.add_parser("run", help="relay local probes to the collector and report node figures")
     run.add_argument("--collector", required=True, type=endpoint, help="collector endpoint, tcp://HOST:PORT")
     run.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
     run.add_argument("--local", type=endpoint, default=None,
                      help=f"endpoint local probes publish to (default: {default_local_endpoint()})")
-    run.add_argument("--interval", type=_positive(float), default=1.0, help="seconds between node samples")
+    run.add_argument("--interval", type=_positive(float), default=1.0,
+                     help="seconds between node samples (default %(default)s)")
     _key_options(run)
 
     job = commands.add_parser("workload", help="run one rank of a ring halo-exchange job to watch")
-    job.add_argument("--rank", required=True, type=_positive(int, allow_zero=True))
+    job.add_argument("--rank", required=True, type=_positive(int, allow_zero=True),
+                     help="this process's rank, 0 to world-1 (its place in --peers)")
     job.add_argument("--peers", required=True, type=peer_list,
                      help="HOST:PORT where each rank listens, in rank order (world = their count)")
     job.add_argument("--collector", required=True, type=endpoint,
                      help="where this rank's probe publishes (collector or node daemon)")
     job.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
-    job.add_argument("--steps", type=_positive(int, allow_zero=True), default=10)
-    job.add_argument("--layers", type=_positive(int), default=8)
+    job.add_argument("--steps", type=_positive(int, allow_zero=True), default=10,
+                     help="training steps to run, then stop (default %(default)s)")
+    job.add_argument("--layers", type=_positive(int), default=8,
+                     help="layers per step, each computing then exchanging halos; at most 4096 (default %(default)s)")
     job.add_argument("--exchange-bytes", type=_positive(int, allow_zero=True), default=65536,
-                     help="mean halo size; layers vary from 1/8 to 2 times it")
+                     help="mean halo size in bytes; layers vary from 1/8 to 2 times it (default %(default)s)")
     job.add_argument("--compute-ms", type=_positive(float, allow_zero=True), default=5.0,
-                     help="compute time per layer")
-    job.add_argument("--seed", type=int, default=0)
+                     help="compute time per layer in milliseconds (default %(default)s)")
+    job.add_argument("--seed", type=int, default=0,
+                     help="seed of the halo sizes and the weights; give every rank the same (default %(default)s)")
     job.add_argument("--connect-timeout", type=_positive(float), default=30.0,
-                     help="seconds to wait for neighbours to come up")
+                     help="seconds to wait for neighbours to come up (default %(default)s)")
     job.add_argument("--spool", metavar="FILE",
                      help="also append every monitoring frame to this local recording (see watchtower merge)")
     _key_options(job)
@@ -195,8 +211,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         args = parser.parse_args(argv)
     except UsageError as exc:
         return _fail(str(exc), USAGE_ERROR)
-    except SystemExit as exc:  # --help: argparse printed it and wants to exit
+    except SystemExit as exc:  # --help, --version: argparse printed it and wants to exit
         return exc.code if isinstance(exc.code, int) else 0
+    if args.command is None:  # bare: show what it can do rather than only a usage error
+        print(parser.format_help(), end="")
+        return USAGE_ERROR
     try:
         return _run(args) if args.command == "run" else _workload(args)
     except (UsageError, DaemonError, ConnectError) as exc:

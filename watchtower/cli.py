@@ -15,6 +15,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, NoReturn
 
+from watchtower import __version__
 from watchtower.cluster import Cluster, ClusterConfigError, load_cluster
 from watchtower.collector import Collector, Endpoint, EndpointError, parse_endpoint
 from watchtower.console.feed import Feed
@@ -52,9 +53,21 @@ def _positive(kind: type[int] | type[float]) -> Callable[[str], float]:
     return parse
 
 
+def _help(parser: argparse.ArgumentParser) -> Callable[[argparse.Namespace], int]:
+    """A command given without its sub-command: show what it can do rather than only a usage error."""
+
+    def show(_: argparse.Namespace) -> int:
+        print(parser.format_help(), end="")
+        return 2
+
+    return show
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog=PROG, description="Watch the network side of a multi-node training job.")
-    commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser, metavar="COMMAND")
+    parser.add_argument("--version", action="version", version=f"%(prog)s {__version__}")
+    parser.set_defaults(run=_help(parser))
+    commands = parser.add_subparsers(dest="command", parser_class=_Parser, metavar="COMMAND")
 
     collect = commands.add_parser("collect", help="receive frames from agents and record them (headless)")
     collect.add_argument("--listen", default="tcp://127.0.0.1:5555", help="endpoint to bind (default %(default)s)")
@@ -102,7 +115,8 @@ def build_parser() -> argparse.ArgumentParser:
     report.set_defaults(run=_report)
 
     keys = commands.add_parser("keys", help="CURVE keys: the head's pair, and one pair per agent")
-    what = keys.add_subparsers(dest="keys_command", required=True, parser_class=_Parser, metavar="{init,agent}")
+    keys.set_defaults(run=_help(keys))
+    what = keys.add_subparsers(dest="keys_command", parser_class=_Parser, metavar="{init,agent}")
     init = what.add_parser("init", help="make the head's key pair and an empty allow-list in DIR")
     init.add_argument("dir", type=Path, metavar="DIR")
     init.set_defaults(run=_keys_init)
@@ -311,6 +325,8 @@ def _collect(args: argparse.Namespace) -> int:
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
+    print(f"{PROG} collect: listening on {collector.bound} ({security['mode']}), recording to "
+          f"{args.record.resolve()}; Ctrl+C stops", file=sys.stderr, flush=True)
     tick = None
     if metrics is not None:
         tick = _snapshot_tick(ingest, collector.bound, security, metrics)
@@ -422,6 +438,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     except WatchtowerError as exc:
         print(f"{PROG}: error: {exc}", file=sys.stderr)
         return exc.exit_code
+    except SystemExit as exc:  # --help and --version: argparse printed them and wants to exit
+        return exc.code if isinstance(exc.code, int) else 0
     except KeyboardInterrupt:
         return 130
     except BrokenPipeError:

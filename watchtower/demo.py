@@ -20,6 +20,7 @@ from watchtower.console.feed import Feed
 from watchtower.errors import UsageError
 
 DEMO_RECORDING = Path(__file__).parent / "data" / "kestrel.wtrace.gz"
+DISTRIBUTION = "watchtower-fabric"
 LIVE_STEPS = 1_000_000  # the ranks run until the console closes
 
 
@@ -29,8 +30,9 @@ def run_demo(*, live: bool, speed: float, ranks: int, window: int, run_console: 
     from watchtower.feeds import ReplayFeed
 
     if not DEMO_RECORDING.exists():
-        raise UsageError(f"the demo recording is missing ({DEMO_RECORDING}); rebuild it with "
-                         "'python demo/kestrel.py'")
+        raise UsageError(f"the demo recording is missing from this installation ({DEMO_RECORDING}): reinstall "
+                         f"Watchtower (pip install --force-reinstall {DISTRIBUTION}); in a source checkout, "
+                         "rebuild it with the generator in demo/")
     return run_console(ReplayFeed(DEMO_RECORDING, speed=speed, window_steps=window))
 
 

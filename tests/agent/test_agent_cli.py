@@ -24,7 +24,6 @@ def _one_error_line(stderr: str) -> str:
 
 
 @pytest.mark.parametrize(("argv", "reason"), [
-    ([], "required"),
     (["bogus"], "invalid choice"),
     (["run", *GOOD, "--bogus"], "unrecognized arguments"),
     (["run"], "--collector"),

@@ -20,7 +20,7 @@ def run(*args: str) -> subprocess.CompletedProcess[str]:
 
 
 @pytest.mark.parametrize("args", [
-    [], ["nonsense"], ["collect"], ["collect", "--record", "x", "--listen", "tcp://127.0.0.1"],
+    ["nonsense"], ["collect"], ["collect", "--record", "x", "--listen", "tcp://127.0.0.1"],
     ["collect", "--record", "x", "--listen", "tcp://0.0.0.0:5555"], ["collect", "--record", "x", "--duration", "-1"],
     ["report"], ["report", "/nonexistent/run.wtrace"], ["report", "a", "b", "c"],
 ])
