@@ -3,7 +3,7 @@
 Each flow crosses resources (its sender's way out, its receiver's way in, optionally a private path); at
 every moment the active flows get max-min fair rates (progressive filling, Bertsekas & Gallager, Data
 Networks, §6.5), and time advances to the next arrival or completion. It drives the invented demo
-(``kestrel.py``) and the port tests, so both see flows that share ports the way TCP flows roughly do.
+(``quorvex.py``) and the port tests, so both see flows that share ports the way TCP flows roughly do.
 """
 
 from __future__ import annotations

@@ -95,8 +95,8 @@ def test_alert_subject_finds_its_link_and_check_defers_to_operators() -> None:
 
 
 def test_short_names_drop_the_shared_prefix_up_to_a_separator() -> None:
-    assert fmt.short_names([f"kestrel-{i:02d}" for i in (1, 2, 3)]) == {"kestrel-01": "01", "kestrel-02": "02",
-                                                                         "kestrel-03": "03"}
+    assert fmt.short_names([f"qvx-{i:02d}" for i in (1, 2, 3)]) == {"qvx-01": "01", "qvx-02": "02",
+                                                                         "qvx-03": "03"}
     assert fmt.short_names(["node0", "node1"]) == {"node0": "node0", "node1": "node1"}  # no separator: kept
     assert fmt.short_names(["rack1.gpu1", "rack2.gpu1"]) == {"rack1.gpu1": "rack1.gpu1", "rack2.gpu1": "rack2.gpu1"}
     assert fmt.short_names(["solo"]) == {"solo": "solo"}

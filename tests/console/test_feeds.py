@@ -16,6 +16,7 @@ import zmq
 
 from agent import Probe
 from agent.clock import ManualClock
+from tests.demo_story import generator
 from watchtower.attach import Beacon, find_collectors
 from watchtower.collector import Collector
 from watchtower.console import ConsoleApp
@@ -65,7 +66,7 @@ def test_replay_knows_its_extent_and_seeks_both_ways(replay: Running) -> None:
     feed.seek(300)
     forward = replay.until(lambda s: s["replay"]["step"] >= 300)
     assert forward["replay"]["step"] == 300 and forward["replay"]["paused"]
-    assert any(a["step_detected"] <= 300 for a in forward["alerts"])  # kestrel-02's way out degraded at 260
+    assert any(a["step_detected"] <= 300 for a in forward["alerts"])  # the degrading way out (generator.DEGRADE_AT)
     feed.seek(50)
     back = replay.until(lambda s: s["replay"]["step"] < 300)
     assert back["replay"]["step"] == 50 and back["alerts"] == []
@@ -93,7 +94,7 @@ async def test_console_on_a_real_replay_seeks_to_the_end_with_a_key() -> None:
         await pilot.press(">")
         await _until(pilot, lambda: app.snapshot["replay"]["step"] == 419)
         await pilot.press("4")
-        await _until(pilot, lambda: "kestrel-02" in screen_text(app))
+        await _until(pilot, lambda: generator().DEGRADING_NODE in screen_text(app))
         text = screen_text(app)
     assert "step time" in text and "INVENTED SCENARIO" in text
 

@@ -21,10 +21,11 @@ from agent.clock import ManualClock
 from agent.probe import Probe
 from tests.conftest import free_tcp_port
 from watchtower.cli import main
+from watchtower.demo import DEMO_RECORDING
 from watchtower.metrics import MetricsAddressError, MetricsServer, parse_address
 from watchtower.report import load_recording
 
-DEMO = Path(__file__).parents[2] / "watchtower" / "data" / "kestrel.wtrace.gz"
+DEMO = DEMO_RECORDING
 OPENMETRICS = "application/openmetrics-text; version=1.0.0; charset=utf-8"
 DEADLINE_S = 30.0
 

@@ -10,8 +10,9 @@ from pathlib import Path
 import pytest
 
 from watchtower.cli import main
+from watchtower.demo import DEMO_RECORDING
 
-DEMO = Path(__file__).parents[2] / "watchtower" / "data" / "kestrel.wtrace.gz"
+DEMO = DEMO_RECORDING
 
 
 def run(*args: str) -> subprocess.CompletedProcess[str]:
@@ -68,7 +69,7 @@ def test_comparing_two_recordings(tmp_path: Path, capsys: pytest.CaptureFixture[
 
     raw = gzip.decompress(DEMO.read_bytes())
     early = tmp_path / "early.wtrace"
-    early.write_bytes(raw[: len(raw) // 2])  # the first half: before kestrel-02's way out degrades
+    early.write_bytes(raw[: len(raw) // 2])  # the first half: before the demo's way out degrades
     assert main(["report", str(early), str(DEMO), "--json"]) == 0
     comparison = json.loads(capsys.readouterr().out)
     assert comparison["step_s"]["ratio"] > 1.0

@@ -97,7 +97,7 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
         if len(members) >= 3:
             far_below[members] = capacity[members] < FAR_BELOW_PEERS * np.nanmedian(capacity[members])
     # A port is only bounded when every link through it runs at the other end's capacity: those links show
-    # the other port, and this one may be as fast as it likes (kestrel-03's way in, fed by two slow senders).
+    # the other port, and this one may be as fast as it likes (qvx-03's way in, fed by two slow senders).
     shown = np.zeros(2 * n, bool)
     np.logical_or.at(shown, ends, capacity[other] > (1 + RELATIVE_JITTER) * beta)
     bound = (count > 0) & ~shown

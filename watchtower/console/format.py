@@ -86,8 +86,8 @@ _SEPARATORS = "-_.:/@"
 
 
 def short_names(names: Iterable[str]) -> dict[str, str]:
-    """Each name less the prefix all of them share up to a separator ("kestrel-04" -> "04" among
-    kestrel-01..06), so narrow columns show what tells nodes apart; the detail line shows names whole."""
+    """Each name less the prefix all of them share up to a separator ("qvx-04" -> "04" among
+    qvx-01..06), so narrow columns show what tells nodes apart; the detail line shows names whole."""
     unique = sorted(set(names))
     if len(unique) < 2:
         return {name: name for name in unique}

@@ -113,7 +113,7 @@ class LinksView(TableView):
         ]
 
     def _short_port(self, port: str) -> str:
-        """"kestrel-04 out" as "04 out" when the node names share a prefix."""
+        """"qvx-04 out" as "04 out" when the node names share a prefix."""
         node, _, direction = port.rpartition(" ")
         return f"{self._short.get(node, node)} {direction}" if node else port
 

@@ -1,17 +1,17 @@
 """The bundled demo: an INVENTED scenario, generated deterministically from a timing model.
 
-Nothing here was measured. "Kestrel" is a made-up cluster of 6 nodes x 4 ranks training "Heron-12", a
+Nothing here was measured. "Quorvex" is a made-up cluster of 6 nodes x 4 ranks training "Nimbrel-12", a
 made-up 12-layer model split over all 24 ranks (each layer exchanges halos with its ring neighbours, and
 gradients are summed with a ring allreduce at the end of each step). The fault story:
 
-- kestrel-04's network card came up at 10 Gb/s instead of 25 Gb/s: every transfer in or out of it is slow
+- qvx-04's network card came up at 10 Gb/s instead of 25 Gb/s: every transfer in or out of it is slow
   from the first step;
-- kestrel-02's way out degrades from step 260 (think of a failing transceiver): a degradation to catch;
-- rank 9 (on kestrel-03) computes 30% slower than its peers (think of a throttled GPU): a straggler.
+- qvx-02's way out degrades from step 260 (think of a failing transceiver): a degradation to catch;
+- rank 9 (on qvx-03) computes 30% slower than its peers (think of a throttled GPU): a straggler.
 
 Halos between nodes share ports max-min fairly (``flowsim.py``). The recording is produced by the real
 ``agent.Probe`` driven by manual clocks, so it goes through exactly
-the code path a live job uses. Run ``python demo/kestrel.py`` to rebuild ``watchtower/data/kestrel.wtrace.gz``;
+the code path a live job uses. Run ``python demo/quorvex.py`` to rebuild ``watchtower/data/quorvex.wtrace.gz``;
 the output is byte-for-byte the same on every run.
 """
 
@@ -32,7 +32,7 @@ from watchtower.recording import Recorder
 sys.path.insert(0, str(Path(__file__).parent))  # flowsim.py, beside this file
 from flowsim import run_flows
 
-NODES = tuple(f"kestrel-{i:02d}" for i in range(1, 7))
+NODES = tuple(f"qvx-{i:02d}" for i in range(1, 7))
 RANKS_PER_NODE = 4
 WORLD = len(NODES) * RANKS_PER_NODE
 LAYERS = ("embed", *(f"blk{b}.{part}" for b in range(1, 6) for part in ("attn", "mlp")), "head")
@@ -43,9 +43,9 @@ SEED = 20261202
 
 NOMINAL_BPS = 25e9 / 8  # 25 Gb/s cards
 PAYLOAD = 0.94  # share of the line rate left for payload after protocol headers (common practice, no source)
-SLOW_NODE = "kestrel-04"
+SLOW_NODE = "qvx-04"
 SLOW_FACTOR = 10 / 25  # came up at 10 Gb/s
-DEGRADING_NODE = "kestrel-02"
+DEGRADING_NODE = "qvx-02"
 DEGRADE_AT = 260
 DEGRADED_FACTOR = 0.30
 STRAGGLER_RANK = 9
@@ -64,12 +64,12 @@ LAYER_HALO_MB = {"embed": 1.0, "head": 2.0, **{f"blk{b}.attn": 1.5 + 0.5 * b for
                  **{f"blk{b}.mlp": 6.0 + 3.0 * b for b in range(1, 6)}}
 
 META = {
-    "tool": "demo/kestrel.py",
+    "tool": "demo/quorvex.py",
     "invented": True,
-    "note": "INVENTED demo scenario: cluster 'Kestrel' (6 nodes x 4 ranks) training 'Heron-12'. Nothing here "
-            "was measured; see demo/kestrel.py for the fault story.",
+    "note": "cluster 'Quorvex' (6 nodes x 4 ranks) training 'Nimbrel-12'. Nothing here was measured; see "
+            "demo/quorvex.py for the fault story.",
     "cluster": {
-        "job": {"name": "heron-12 (invented)", "total_steps": TOTAL_STEPS, "ranks_per_node": RANKS_PER_NODE},
+        "job": {"name": "nimbrel-12 (invented)", "total_steps": TOTAL_STEPS, "ranks_per_node": RANKS_PER_NODE},
         "network": {"nic_Bps": NOMINAL_BPS},
     },
 }
@@ -101,7 +101,7 @@ def generate() -> tuple[dict, list[tuple[int, list[bytes]]]]:
     clocks = [ManualClock() for _ in range(WORLD)]
     skews = [CLOCK_SKEW_NS[node_of(r)] for r in range(WORLD)]
     probes = [
-        Probe(r, WORLD, NODES[node_of(r)], None, layers=(*LAYERS, GRAD_SYNC), job="heron-12 (invented)",
+        Probe(r, WORLD, NODES[node_of(r)], None, layers=(*LAYERS, GRAD_SYNC), job="nimbrel-12 (invented)",
               sender=1000 + r, clock=clocks[r], wall_clock=lambda r=r: EPOCH_NS + clocks[r].now - skews[r])
         for r in range(WORLD)
     ]
@@ -246,7 +246,7 @@ def write(path: Path) -> int:
 
 
 if __name__ == "__main__":
-    default = Path(__file__).parents[1] / "watchtower" / "data" / "kestrel.wtrace.gz"
+    default = Path(__file__).parents[1] / "watchtower" / "data" / "quorvex.wtrace.gz"
     target = Path(sys.argv[1]) if len(sys.argv) > 1 else default
     count = write(target)
     print(f"wrote {count} records to {target} ({target.stat().st_size / 1e6:.1f} MB)")
