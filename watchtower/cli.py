@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import shutil
 import signal
 import sys
 import threading
@@ -23,6 +24,7 @@ from watchtower.errors import UsageError, WatchtowerError
 from watchtower.ingest import Ingest
 from watchtower.keys import HeadKeys, load_head
 from watchtower.recording import NotARecording, Recorder, RecordingError, RecordingReader
+from watchtower.tables import MIN_WIDTH
 
 if TYPE_CHECKING:
     from watchtower.metrics import MetricsServer
@@ -61,6 +63,20 @@ def _help(parser: argparse.ArgumentParser) -> Callable[[argparse.Namespace], int
         return 2
 
     return show
+
+
+def _at_least(low: int) -> Callable[[str], int]:
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if value < low:
+            raise argparse.ArgumentTypeError(f"must be at least {low}, got {text!r}")
+        return value
+
+    parse.__name__ = "int"
+    return parse
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -109,7 +125,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     report = commands.add_parser("report", help="figures from a recording, as a table or JSON")
     report.add_argument("recording", type=Path, nargs="+", help="one recording, or two to compare (A then B)")
-    report.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    report.add_argument("--format", choices=("text", "json", "csv"), default=None,
+                        help="text (default), JSON (docs/snapshot.md), or one table as CSV (with --table)")
+    report.add_argument("--json", action="store_true", help="the same as --format json")
+    report.add_argument("--table", metavar="NAME",
+                        help="with --format csv: layers, links, ports, nodes, stragglers or alerts (two files: "
+                             "layers, links, new_slow_links or new_stragglers)")
+    report.add_argument("--width", type=_at_least(MIN_WIDTH),
+                        help="text: fit every line in this many columns (default: the terminal's width)")
     report.add_argument("--cluster", type=Path, help="cluster description (TOML): nominal rates, total steps")
     report.add_argument("--window", type=_positive(int), help="analyse only the last N steps")
     report.set_defaults(run=_report)
@@ -428,7 +451,12 @@ def _merge(args: argparse.Namespace) -> int:
 def _report(args: argparse.Namespace) -> int:
     from watchtower.report import run_report
 
-    return run_report(args.recording, as_json=args.json, cluster=_cluster(args.cluster), window=args.window)
+    if args.json and args.format not in (None, "json"):
+        raise UsageError(f"--json and --format {args.format} disagree: give one")
+    output = "json" if args.json else args.format or "text"
+    width = args.width or shutil.get_terminal_size().columns
+    return run_report(args.recording, output=output, cluster=_cluster(args.cluster), window=args.window,
+                      width=max(width, MIN_WIDTH), table=args.table)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -2,6 +2,7 @@
 
 The recording is read record by record (never whole); the store keeps a bounded window, so memory does
 not grow with the file. Two recordings are compared: what got slower from A to B, where and by how much.
+Output: text fitted to a width, JSON with a schema version (docs/snapshot.md), or one table as CSV.
 """
 
 from __future__ import annotations
@@ -17,7 +18,11 @@ from watchtower.errors import UsageError
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader
 from watchtower.snapshot import build_snapshot, cluster_for
-from watchtower.tables import format_comparison, format_snapshot
+from watchtower.tables import COMPARISON_TABLES, SNAPSHOT_TABLES, format_comparison, format_csv, format_snapshot
+
+SCHEMA_VERSION = 1
+"""Version of ``report --json``'s layout (docs/snapshot.md): raised when a key is renamed, removed or changes
+meaning; adding a key does not raise it."""
 
 
 def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> dict[str, Any]:
@@ -36,9 +41,17 @@ def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> d
     return snapshot
 
 
-def run_report(paths: list[Path], *, as_json: bool, cluster: Cluster | None, window: int | None) -> int:
+def run_report(paths: list[Path], *, output: str, cluster: Cluster | None, window: int | None, width: int,
+               table: str | None = None) -> int:
+    """Print one recording's snapshot, or what changed from A to B, as text, JSON or one table as CSV."""
     if len(paths) > 2:
         raise UsageError("give one recording, or two to compare")
+    tables = COMPARISON_TABLES if len(paths) == 2 else SNAPSHOT_TABLES
+    if table is not None and output != "csv":
+        raise UsageError("--table goes with --format csv")
+    if output == "csv" and table not in tables:
+        given = "" if table is None else f", not {table!r}"
+        raise UsageError(f"--format csv prints one table: give --table {' | '.join(tables)}{given}")
     snapshots = [load_recording(path, cluster, window) for path in paths]
     for path, snapshot in zip(paths, snapshots, strict=True):
         if not snapshot["recording"]["complete"]:
@@ -46,9 +59,15 @@ def run_report(paths: list[Path], *, as_json: bool, cluster: Cluster | None, win
                   f"({snapshot['recording']['reason']}); figures cover the complete records before it",
                   file=sys.stderr)
     if len(snapshots) == 2:
-        result = compare(snapshots[0], snapshots[1])
-        text = json.dumps(result, indent=2) if as_json else format_comparison(result, *map(str, paths))
+        document = {"schema_version": SCHEMA_VERSION, "report": "comparison", "a": str(paths[0]), "b": str(paths[1]),
+                    **compare(snapshots[0], snapshots[1])}
+        text = format_comparison(document, *map(str, paths), width=width)
     else:
-        text = json.dumps(snapshots[0], indent=2) if as_json else format_snapshot(snapshots[0])
+        document = {"schema_version": SCHEMA_VERSION, "report": "snapshot", **snapshots[0]}
+        text = format_snapshot(document, width=width)
+    if output == "json":
+        text = json.dumps(document, indent=2, ensure_ascii=False)
+    elif output == "csv":
+        text = format_csv(document[table])
     print(text)
     return 0
