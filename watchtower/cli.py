@@ -123,7 +123,8 @@ def build_parser() -> argparse.ArgumentParser:
     _console_options(demo)
     demo.set_defaults(run=_demo)
 
-    report = commands.add_parser("report", help="figures from a recording, as a table or JSON")
+    report = commands.add_parser("report",
+                                 help="figures from a recording, as text, JSON or CSV; two recordings compare")
     report.add_argument("recording", type=Path, nargs="+", help="one recording, or two to compare (A then B)")
     report.add_argument("--format", choices=("text", "json", "csv"), default=None,
                         help="text (default), JSON (docs/snapshot.md), or one table as CSV (with --table)")
