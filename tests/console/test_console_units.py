@@ -24,7 +24,7 @@ def test_rate(value: float | None, shown: str) -> None:
 
 @pytest.mark.parametrize(
     ("value", "shown"),
-    [(3.4e-3, "3.40 ms"), (1.2e-5, "12.0 µs"), (2.5, "2.50 s"), (0, "0 s"), (None, "—"), (150.0, "150 s")],
+    [(3.4e-3, "3.40 ms"), (1.2e-5, "12.0 µs"), (2.5, "2.50 s"), (0, "0.00 s"), (None, "—"), (150.0, "150 s")],
 )
 def test_seconds(value: float | None, shown: str) -> None:
     assert fmt.seconds(value) == shown
@@ -90,7 +90,7 @@ def test_alert_subject_finds_its_link_and_check_defers_to_operators() -> None:
     assert subject_link({**link_alert, "subject": "node-c -> node-d"}, snapshot["links"]) is link
     assert subject_link(job_alert, snapshot["links"]) is None
     advice = next_check(link_alert, link).plain
-    assert "node-c out (ens1f0)" in advice and "operators" in advice and "vendor" in advice
+    assert "node-c out" in advice and "operators" in advice and "vendor" in advice
     assert "operators" in next_check(job_alert, None).plain
 
 

@@ -14,6 +14,7 @@ from textual.timer import Timer
 from textual.widgets import ContentSwitcher, Footer, Static
 
 from .alerts import AlertsView
+from .culprit import CulpritStrip
 from .feed import Feed, ReplayControls, Snapshot
 from .header import JobHeader
 from .howto import HowView
@@ -84,6 +85,7 @@ class ConsoleApp(App[None]):
 
     def compose(self) -> ComposeResult:
         yield JobHeader()
+        yield CulpritStrip()
         yield ViewBar()
         yield ReplayBar()
         with ContentSwitcher(initial="layers", id="views"):
@@ -139,6 +141,7 @@ class ConsoleApp(App[None]):
         if snapshot is None:
             return
         self.query_one(JobHeader).snapshot = snapshot
+        self.query_one(CulpritStrip).snapshot = snapshot
         self.query_one(ViewBar).alerts = len(snapshot["alerts"])
         self.query_one(ReplayBar).position = snapshot["replay"]
         self.current_view.snapshot = snapshot
