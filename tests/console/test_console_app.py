@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import pytest
-from textual.widgets import ContentSwitcher, DataTable, HelpPanel
+from textual.widgets import ContentSwitcher, DataTable
 
 from watchtower.console import ConsoleApp, StaticFeed
 from watchtower.console.drilldown import WorstRanksScreen
 from watchtower.console.header import JobHeader
+from watchtower.console.keys import KeysScreen
 
 from .conftest import FakeClock, RecordingControls, screen_text, settle
 from .scenario import make_snapshot
@@ -142,7 +143,7 @@ async def test_replay_keys_call_feed_controls(replay_app: ConsoleApp, controls: 
         ("seek", 0),
         ("seek", 2400),
         ("set_speed", 4.0),
-        ("set_speed", 1.0),
+        ("set_speed", 2.0),  # from the 4× just asked for, not from the snapshot's stale 2×
     ]
 
 
@@ -194,15 +195,20 @@ async def test_alert_suggests_a_cautious_check_naming_the_port(live_app: Console
     assert "node-c out" in text and "operators" in text
 
 
-async def test_k_toggles_the_key_list(live_app: ConsoleApp) -> None:
+async def test_k_toggles_our_own_key_list_that_fits_80x24(live_app: ConsoleApp) -> None:
     async with live_app.run_test(size=(80, 24)) as pilot:
         await settle(pilot)
         await pilot.press("k")
         await pilot.pause()
-        assert live_app.screen.query(HelpPanel)
+        assert isinstance(live_app.screen, KeysScreen)
+        text = screen_text(live_app)
         await pilot.press("k")
         await pilot.pause()
-        assert not live_app.screen.query(HelpPanel)
+        assert not isinstance(live_app.screen, KeysScreen)
+    assert "freeze the view" in text and "write the view" in text and "quit" in text
+    assert "k or esc closes this list" in text  # the last line: the whole list fits on the screen
+    assert "palette" not in text.lower() and "copy" not in text.lower()  # the framework's own keys are not ours
+    assert "pause or play" not in text  # replay keys only for a replay
 
 
 async def test_q_quits_and_stops_the_feed(live_app: ConsoleApp) -> None:

@@ -61,20 +61,19 @@ class LayersView(TableView):
             self._layout_columns()
 
     def _layout_columns(self) -> None:
-        """Figures first, whole; the layer's name takes what is left (it is whole in the detail line)."""
+        """Names whole and figures whole: a narrow terminal leaves out the bar, then the worst rank's figures."""
         longest = max((fmt.literal(r["name"]).cell_len for r in self.snapshot["layers"]), default=5) \
             if self.snapshot else 14
-        fixed = len(COMM_MARK) + 9 + 9 + 10 + fmt.PERCENT_WIDTH + 5 + 7 * 2 + 2
-        spare = self.size.width - fixed
-        self._name_width = min(max(longest, 5), max(spare, 8))
-        self._bar_width = min(max(spare - self._name_width - 2, 0), 40)
+        self._name_width = min(max(longest, 5), 40)
+        fixed = len(COMM_MARK) + self._name_width + 9 + 9 + 10 + fmt.PERCENT_WIDTH + 5 + 7 * 2 + 2
+        self._bar_width = min(max(self.size.width - fixed - 2, 0), 40)
         columns = [
             ColumnSpec("", len(COMM_MARK)),
             ColumnSpec("layer", self._name_width),
-            ColumnSpec("comp/step", 9),
+            ColumnSpec("comp/step", 9, drop=2),
             ColumnSpec("exch/step", 9),
-            ColumnSpec("worst/step", 10, drop=2),
-            *([ColumnSpec("time", self._bar_width, drop=3)] if self._bar_width >= 6 else []),
+            ColumnSpec("worst/step", 10, drop=3),
+            ColumnSpec("time", max(self._bar_width, 6), drop=4),
             ColumnSpec("comm", fmt.PERCENT_WIDTH),
             ColumnSpec("worst", fmt.PERCENT_WIDTH + 1, drop=1),
         ]
@@ -85,15 +84,14 @@ class LayersView(TableView):
         per_step = layer.get("per_step") or {}
         compute, exchange = per_step.get("compute_s"), per_step.get("exchange_s")
         compute_bar, exchange_bar = fmt.split_bar(compute or 0.0, exchange or 0.0, self._scale,
-                                                  self._bar_width)  # null before the first complete step
+                                                  max(self._bar_width, 6))  # null before the first complete step
         return [
             Text(COMM_MARK if bound else "", self.paint("bad")),
             fmt.fit(fmt.literal(layer["name"]), self._name_width),
             Text(fmt.seconds(compute), justify="right"),
             Text(fmt.seconds(exchange), justify="right"),
             Text(fmt.seconds(per_step.get("exchange_worst_s")), justify="right"),
-            *([Text.assemble((compute_bar, self.paint("compute")), (exchange_bar, self.paint("exchange")))]
-              if self._bar_width >= 6 else []),
+            Text.assemble((compute_bar, self.paint("compute")), (exchange_bar, self.paint("exchange"))),
             Text(fmt.percent(layer["comm_fraction"]), self.paint("bad") if bound else "", justify="right"),
             Text(fmt.percent(layer["comm_fraction_worst"]), justify="right"),
         ]

@@ -135,6 +135,13 @@ class RecordTable(DataTable[Text]):
         self._records = list(records)
         self._fill()
 
+    def rows_as_shown(self) -> tuple[list[str], list[list[str]], list[Record]]:
+        """Headers and plain cells of every column (shown or not), in the order and filter on screen, and the
+        records behind the rows."""
+        records = self._sorted()
+        headers = [spec.label or "mark" for spec in self._all_columns]
+        return headers, [[cell.plain for cell in self._cells(record)] for record in records], records
+
     def record_at_cursor(self) -> Record | None:
         """The record under the cursor, if any."""
         if not self._order or not 0 <= self.cursor_row < len(self._order):
