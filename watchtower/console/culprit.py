@@ -35,19 +35,20 @@ class Suspect:
     hours: float | None = None
     since: int | None = None
 
-    def phrase(self, short: dict[str, str], peers: bool = True) -> str:
-        """The suspect in words, with the node's name shortened through `short` (never cut)."""
+    def phrase(self, short: dict[str, str], terse: int = 0) -> str:
+        """The suspect in words, with the node's name shortened through `short` (never cut); `terse` 1 drops
+        the peers' rate and shortens the onset, 2 keeps only name, way, rate and hours."""
         name = fmt.visible(short.get(self.node, self.node))
         if self.what.startswith("rank"):
-            return f"{self.what} on {name} computes slowly"
+            return f"{self.what} on {name} computes slowly" if terse < 2 else f"{self.what} on {name} slow"
         text = f"{name} {self.what}"
         if self.rate_Bps is not None:
-            text += f" at {fmt.rate(self.rate_Bps)}"
-            if peers and self.peers_Bps is not None:
+            text += f" at {fmt.rate(self.rate_Bps)}" if terse < 2 else f" {fmt.rate(self.rate_Bps)}"
+            if not terse and self.peers_Bps is not None:
                 text += f" vs {fmt.rate(self.peers_Bps)} peers"
-        if self.since is not None:
-            text += f", degraded since step {self.since:,}"
-        cost = [fmt.counted(self.links, "link")] if self.links else []
+        if self.since is not None and (terse < 2 or self.rate_Bps is None):
+            text += f", degraded since step {self.since:,}" if not terse else f" since step {self.since:,}"
+        cost = [fmt.counted(self.links, "link")] if self.links and terse < 2 else []
         if self.hours:
             cost.append(fmt.hours(self.hours))
         return text + (f" → {', '.join(cost)}" if cost else "")
@@ -94,21 +95,24 @@ def culprit_line(snapshot: Snapshot, width: int) -> str:
         return CLEAR
     names = [node["name"] for node in snapshot["nodes"]]
     short = fmt.short_names(names)
-    candidates = [({}, True), (short, True), (short, False)]
-    for names_used, peers in candidates:
-        line = LABEL + "; ".join(s.phrase(names_used, peers) for s in found)
+    for names_used, terse in (({}, 0), (short, 0), (short, 1)):
+        line = LABEL + "; ".join(s.phrase(names_used, terse) for s in found)
         if cell_len(line) <= width:
             return line
     label = LABEL if width >= 100 else SHORT_LABEL
+    for terse in (1, 2):
+        line = label + "; ".join(s.phrase(short, terse) for s in found)
+        if cell_len(line) <= width:
+            return line
     kept: list[str] = []
     for number, suspect in enumerate(found):
+        phrase = suspect.phrase(short, 2)
         more = len(found) - number - 1
-        phrase = suspect.phrase(short, False)
-        tail = f"; +{more} more" if more else ""
-        if cell_len(label + "; ".join([*kept, phrase]) + tail) > width and kept:
-            return label + "; ".join(kept) + f"; +{len(found) - number} more"
+        if kept and cell_len(label + "; ".join([*kept, phrase]) + (f"; +{more} more" if more else "")) > width:
+            break
         kept.append(phrase)
-    return label + "; ".join(kept)
+    more = len(found) - len(kept)
+    return label + "; ".join(kept) + (f"; +{more} more" if more else "")
 
 
 class CulpritStrip(Widget):

@@ -22,7 +22,7 @@ GENERAL = (
     ("k", "this list"),
     ("q  ctrl+c", "quit"),
 )
-LIVE = (("space", "freeze the view, the feed keeps ingesting; again: follow"),)
+LIVE = (("space", "freeze the view (the feed keeps ingesting)"),)
 REPLAY = (
     ("space  .", "pause or play; one step"),
     ("[  ]", "back or forward one jump"),
