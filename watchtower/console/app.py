@@ -134,6 +134,8 @@ class ConsoleApp(App[None]):
         self.query_one(ReplayBar).display = False
         if self.low_bandwidth:
             self.query_one(JobHeader).plain = True
+            for view in self.query(SnapshotView):
+                view.plain = True
             for table in self.query("RecordTable").results(DataTable):
                 table.zebra_stripes = False
         self._fit_terminal(self.size.width, self.size.height)

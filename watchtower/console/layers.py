@@ -77,7 +77,7 @@ class LayersView(TableView):
             ColumnSpec("comm", fmt.PERCENT_WIDTH),
             ColumnSpec("worst", fmt.PERCENT_WIDTH + 1, drop=1),
         ]
-        self.table.set_columns(columns, self.size.width - 2)
+        self.table.set_columns(columns, self.size.width - 2, hide={"time"} if self.plain else set())
 
     def _cells(self, layer: Record) -> list[Text]:
         bound = layer["comm_bound"]

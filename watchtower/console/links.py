@@ -91,12 +91,15 @@ class LinksView(TableView):
         names = [node["name"] for node in snapshot["nodes"]]
         for link in links:
             names.extend(n for n in (link["src"], link["dst"]) if n not in names)
-        self._short = fmt.short_names(names)
+        short = fmt.short_names(names)
         box = self.query_one("#matrix-box", ScrollableContainer)
         box_width = min(matrix_width(len(names)) + 1, max(self.size.width // 2, LEGEND_WIDTH + 1))
         box.display = self.size.width - box_width >= TABLE_CORE
         room = self.size.width - (box_width if box.display else 0) - 2  # the table's scroll bar
         box.styles.width = box_width
+        self._short = {}  # whole names when every column fits with them, else the tails that tell nodes apart
+        if sum(spec.width + 2 for spec in self._columns(links)) > room:
+            self._short = short
         self.table.set_columns(self._columns(links), room)
         self.query_one(LinkMatrix).grid = Grid(
             tuple(names),

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Sequence, Set
 from dataclasses import dataclass
 from typing import Any, ClassVar
 
@@ -115,10 +115,12 @@ class RecordTable(DataTable[Text]):
         """The order in use."""
         return self.sort_keys[self.sort_index]
 
-    def set_columns(self, columns: Sequence[ColumnSpec], width: int | None = None) -> None:
+    def set_columns(self, columns: Sequence[ColumnSpec], width: int | None = None,
+                    hide: Set[str] = frozenset()) -> None:
         """Replace the columns when their widths change (on resize), keeping the rows; with `width`, leave
-        out the most dispensable columns that do not fit."""
-        kept = list(columns) if width is None else fit_columns(columns, width)
+        out the most dispensable columns that do not fit; `hide` names columns not to show at all."""
+        shown = [c for c in columns if c.label not in hide]
+        kept = shown if width is None else fit_columns(shown, width)
         if kept == self._columns and list(columns) == self._all_columns:
             return
         self._all_columns = list(columns)
