@@ -225,3 +225,42 @@ async def test_no_color_keeps_the_selected_row_reversed(monkeypatch: pytest.Monk
         style = table.get_component_styles("datatable--cursor")
     assert app.no_color
     assert style.text_style.reverse  # readable without colour: the selection is reversed, not tinted
+
+
+async def test_space_at_the_end_of_a_replay_plays_it_again(clock: FakeClock, controls: RecordingControls) -> None:
+    # At the end the feed reports itself paused and idles: a resume alone would leave "▶ PLAYING" on a
+    # recording that never moves again.
+    ended = make_snapshot(2400, replay=True)
+    ended["replay"]["paused"] = True
+    app = ConsoleApp(StaticFeed([ended], controls=controls), clock=clock)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await pilot.press("space")
+        await pilot.pause()
+        assert "SEEKING to 0" in app.query_one(ReplayBar).render().plain
+    assert controls.calls == [("seek", 0), ("resume", None)]
+
+
+async def test_sixteen_colours_keep_the_lightest_shade_off_the_background(clock: FakeClock) -> None:
+    # TERM=xterm gives 16 colours: rich's own downgrade (the reference) must not map the lightest heat-map
+    # shade onto the colour of the background it is drawn on, nor the selected row's text onto its own.
+    from rich.color import Color as RichColor
+    from rich.color import ColorSystem
+
+    from watchtower.console.matrix import LinkMatrix
+
+    app = ConsoleApp(StaticFeed([make_snapshot(1210)]), clock=clock)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await pilot.press("2")
+        await pilot.pause()
+        matrix = app.query_one(LinkMatrix)
+        lightest = matrix.get_component_rich_style("matrix--l0")
+        background = matrix.background_colors[1].rich_color
+
+    def sixteen(color: RichColor | None) -> str:
+        assert color is not None
+        return str(color.downgrade(ColorSystem.STANDARD).number)
+
+    assert sixteen(lightest.color) != sixteen(background)
+    assert sixteen(lightest.color) not in {"0", "8"}  # black or dark grey on a dark screen: unreadable

@@ -350,9 +350,13 @@ class ConsoleApp(App[None]):
         self.frozen = not self.frozen
 
     def action_pause_resume(self) -> None:
-        """Pause a playing replay, resume a paused one."""
+        """Pause a playing replay, resume a paused one; at the end, play again from the start."""
         controls, position = self._replay()
-        if position is not None and position["paused"]:
+        if position is not None and position["paused"] and position["step"] >= position["last_step"]:
+            controls.seek(position["first_step"])
+            controls.resume()
+            self._ask(paused=False, seek=(position["first_step"], position["step"]))
+        elif position is not None and position["paused"]:
             controls.resume()
             self._ask(paused=False)
         else:
