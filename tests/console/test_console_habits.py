@@ -227,6 +227,15 @@ async def test_no_color_keeps_the_selected_row_reversed(monkeypatch: pytest.Monk
     assert style.text_style.reverse  # readable without colour: the selection is reversed, not tinted
 
 
+async def test_seek_presses_during_a_seek_add_up(clock: FakeClock, controls: RecordingControls) -> None:
+    app = ConsoleApp(StaticFeed([make_snapshot(1210, replay=True)], controls=controls), clock=clock)
+    async with app.run_test(size=(80, 24)) as pilot:
+        await settle(pilot)
+        await pilot.press("right_square_bracket", "right_square_bracket", "right_square_bracket")
+        await pilot.pause()
+    assert controls.calls == [("seek", 1310), ("seek", 1410), ("seek", 1510)]
+
+
 async def test_space_at_the_end_of_a_replay_plays_it_again(clock: FakeClock, controls: RecordingControls) -> None:
     # At the end the feed reports itself paused and idles: a resume alone would leave "▶ PLAYING" on a
     # recording that never moves again.
@@ -264,3 +273,21 @@ async def test_sixteen_colours_keep_the_lightest_shade_off_the_background(clock:
 
     assert sixteen(lightest.color) != sixteen(background)
     assert sixteen(lightest.color) not in {"0", "8"}  # black or dark grey on a dark screen: unreadable
+
+
+async def test_links_detail_explains_a_beta_above_nominal_and_a_clamped_alpha(clock: FakeClock) -> None:
+    snapshot = make_snapshot(1210)
+    fast = snapshot["links"][1]
+    fast.update(bandwidth_Bps=13.0e9, score=-9.0)  # sorted first by score; 4 % above 12.5 GB/s
+    app = ConsoleApp(StaticFeed([snapshot]), clock=clock)
+    async with app.run_test(size=(160, 48)) as pilot:
+        await settle(pilot)
+        await pilot.press("2")
+        await pilot.pause()
+        above = " ".join(screen_text(app).split())
+        await pilot.press("down")
+        await pilot.pause()
+        clamped = " ".join(screen_text(app).split())
+        alphas = column(app, "#links-table", "α")
+    assert "β 13.0 GB/s (4% above nominal: the fit's error" in above
+    assert "α clamped to 0" in clamped and alphas[1] == "clamped" and "clamped" not in alphas[0]

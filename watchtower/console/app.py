@@ -384,7 +384,8 @@ class ConsoleApp(App[None]):
         if position is None:
             self.notify("No replay position yet.")
             return
-        target = min(max(position["step"] + jumps * self.seek_steps, position["first_step"]), position["last_step"])
+        base = position["seek"][0] if position.get("seek") else position["step"]  # presses during a seek add up
+        target = min(max(base + jumps * self.seek_steps, position["first_step"]), position["last_step"])
         controls.seek(target)
         self._ask(seek=(target, position["step"]))
 

@@ -162,6 +162,9 @@ class LinksView(TableView):
             port = Text(" · no slow port explains it: the path between the ends, or the pair itself")
         else:
             port = Text()
+        beta, nominal = link["bandwidth_Bps"], link["nominal_Bps"]
+        above = (f" ({fmt.percent(beta / nominal - 1)} above nominal: the fit's error, no card beats its rate)"
+                 if beta is not None and nominal and beta > nominal else "")
         alpha = ("α clamped to 0 (fit below zero: too small to measure)"
                  if link.get("latency_clamped") else f"α {fmt.seconds(link['latency_s'])}")
         self.set_detail(
@@ -169,7 +172,7 @@ class LinksView(TableView):
                 link_name(link),
                 (" SLOW" if link["slow"] else "", self.paint("bad")),
                 port,
-                f" · β {fmt.rate(link['bandwidth_Bps'])} · throughput {fmt.rate(link['throughput_Bps'])}",
+                f" · β {fmt.rate(beta)}{above} · throughput {fmt.rate(link['throughput_Bps'])}",
                 f" = {fmt.percent(link['of_nominal'])} of nominal {fmt.rate(link['nominal_Bps'])}",
                 f" · {alpha} · score {fmt.number(link['score'])}",
                 f" · {fmt.hours(link['hours_at_stake'])} at stake · {fmt.counted(link['transfers'], 'transfer')},",
