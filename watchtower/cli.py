@@ -14,7 +14,7 @@ import sys
 import threading
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, NoReturn
+from typing import TYPE_CHECKING, Any, NoReturn
 
 from watchtower import __version__
 from watchtower.cluster import Cluster, ClusterConfigError, load_cluster
@@ -192,6 +192,16 @@ def _console_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--cluster", type=Path, help="cluster description (TOML): nominal rates, total steps")
     parser.add_argument("--window", type=_positive(int), default=120,
                         help="steps the console's figures cover (default %(default)s)")
+    parser.add_argument("--interval", type=_positive(float), default=0.25, metavar="SECONDS",
+                        help="shortest time between two redraws (default %(default)s)")
+    parser.add_argument("--low-bandwidth", action="store_true",
+                        help="for a slow remote link: redraw at most once a second, without sparklines, bars "
+                             "or stripes")
+
+
+def _console_settings(args: argparse.Namespace) -> dict[str, Any]:
+    """The console options of `watch`, `replay` and `demo`, as ConsoleApp's keyword arguments."""
+    return {"redraw_interval_s": args.interval, "low_bandwidth": args.low_bandwidth}
 
 
 def _cluster(path: Path | None) -> Cluster | None:
@@ -246,7 +256,7 @@ def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: Hea
         raise UsageError(str(exc)) from None
 
 
-def _run_console(feed: Feed, metrics: MetricsServer | None = None) -> int:
+def _run_console(feed: Feed, metrics: MetricsServer | None = None, settings: dict[str, Any] | None = None) -> int:
     from watchtower.console import ConsoleApp
 
     if metrics is not None:
@@ -254,7 +264,7 @@ def _run_console(feed: Feed, metrics: MetricsServer | None = None) -> int:
 
         feed = PublishingFeed(feed, metrics.metrics)
     try:
-        ConsoleApp(feed).run()
+        ConsoleApp(feed, **(settings or {})).run()
     finally:
         if metrics is not None:
             metrics.close()
@@ -278,7 +288,7 @@ def _watch(args: argparse.Namespace) -> int:
                 metrics.close()
             raise
         feed: Feed = LiveFeed(collector, cluster=cluster, security=security, window_steps=args.window)
-        return _run_console(feed, metrics)
+        return _run_console(feed, metrics, _console_settings(args))
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
     if args.follow is not None:
@@ -295,7 +305,7 @@ def _watch(args: argparse.Namespace) -> int:
         raise UsageError(f"cannot follow {recording}: {exc.strerror}") from None
     except RecordingError as exc:
         raise UsageError(f"cannot follow {recording}: {exc}") from None
-    return _run_console(feed, _metrics(args.metrics))
+    return _run_console(feed, _metrics(args.metrics), _console_settings(args))
 
 
 def _replay(args: argparse.Namespace) -> int:
@@ -306,14 +316,14 @@ def _replay(args: argparse.Namespace) -> int:
                           from_step=args.from_step, window_steps=args.window)
     except RecordingError as exc:
         raise UsageError(str(exc)) from None
-    return _run_console(feed)
+    return _run_console(feed, settings=_console_settings(args))
 
 
 def _demo(args: argparse.Namespace) -> int:
     from watchtower.demo import run_demo
 
     return run_demo(live=args.live, speed=args.speed, ranks=int(args.ranks), window=args.window,
-                    run_console=_run_console)
+                    run_console=lambda feed: _run_console(feed, settings=_console_settings(args)))
 
 
 def _resume(path: Path) -> Ingest:

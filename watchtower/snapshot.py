@@ -61,12 +61,14 @@ def build_snapshot(
     worst = worst_ranks(window, WORST_RANKS)
     node_names = window.nodes
     rank_node = dict(zip(window.ranks.tolist(), window.rank_node.tolist(), strict=True))
+    per_step = 1.0 / worst.steps if worst.steps else math.nan
     for i, layer in enumerate(snapshot["layers"]):
         layer["worst_ranks"] = [
             {"rank": int(r), "node": node_names[rank_node[int(r)]], "compute_s": _f(c), "exchange_s": _f(e),
-             "comm_fraction": _f(f)}
-            for r, c, e, f in zip(worst.rank[:, i], worst.compute_s[:, i], worst.exchange_s[:, i],
-                                  worst.comm_fraction[:, i], strict=True)
+             "comm_fraction": _f(f), "compute_step_s": _f(c * per_step), "exchange_step_s": _f(e * per_step),
+             "waits_on": None if w < 0 else {"rank": int(w), "node": node_names[rank_node[int(w)]]}}
+            for r, c, e, f, w in zip(worst.rank[:, i], worst.compute_s[:, i], worst.exchange_s[:, i],
+                                     worst.comm_fraction[:, i], worst.waits_on[:, i], strict=True)
             if math.isfinite(f)
         ]
     compute_ns, exchange_ns = store.totals_ns()

@@ -10,6 +10,19 @@ from collections.abc import Sequence
 
 MISSING = "—"
 """Shown for a figure that could not be computed (null in the snapshot)."""
+ARROW = "→"
+"""Between the two ends of a directed link, everywhere a link is named."""
+
+RATE_WIDTH = 9
+"""Cells the widest `rate` takes ("12.3 GB/s"): a column this wide never cuts a unit."""
+SECONDS_WIDTH = 7
+"""Cells the widest `seconds` takes ("12.3 ms")."""
+SIGNED_SECONDS_WIDTH = 8
+"""Cells the widest `signed_seconds` takes ("−12.3 ms")."""
+PERCENT_WIDTH = 4
+"""Cells the widest `percent` takes ("100%"; a rare figure above 999 % widens the cell, never cut)."""
+HOURS_WIDTH = 6
+"""Cells `hours` takes up to 9999 h."""
 
 # Character classes that would move the cursor, recolour, reorder or hide text on a terminal.
 _UNSAFE_CATEGORIES = frozenset({"Cc", "Cf", "Cs", "Co", "Zl", "Zp"})
@@ -55,7 +68,7 @@ def seconds(value: float | None) -> str:
     if value is None:
         return MISSING
     if value == 0:
-        return "0 s"
+        return "0.00 s"  # no unit fits zero better than another; keep the three digits of its neighbours
     return _scaled(value, [(1.0, "s"), (1e-3, "ms"), (1e-6, "µs"), (1e-9, "ns")])
 
 
@@ -63,7 +76,9 @@ def signed_seconds(value: float | None) -> str:
     """A clock offset, whose sign says which way the node's clock is off."""
     if value is None:
         return MISSING
-    return ("+" if value >= 0 else "−") + seconds(abs(value))
+    if value == 0:
+        return seconds(0.0)  # the reference clock itself: no direction to show
+    return ("+" if value > 0 else "−") + seconds(abs(value))
 
 
 def duration(value: float | None) -> str:
@@ -109,6 +124,23 @@ def number(value: float | None, digits: int = 1) -> str:
     if value is None:
         return MISSING
     return f"{value:.{digits}f}".replace("-", "−")
+
+
+def size(nbytes: float | None) -> str:
+    """An amount of data in decimal units, three significant digits ("11.7 GB", not 11,702,108,160 B)."""
+    if nbytes is None:
+        return MISSING
+    return _scaled(nbytes, [(1e12, "TB"), (1e9, "GB"), (1e6, "MB"), (1e3, "kB"), (1.0, "B")])
+
+
+def counted(value: int, noun: str, plural: str | None = None) -> str:
+    """A count with its noun in the right number: "1 alert", "3 alerts", "1,024 ranks"."""
+    return f"{value:,} {noun if value == 1 else plural or noun + 's'}"
+
+
+def link(src: str, dst: str) -> str:
+    """A directed link as its two ends joined by the one arrow used everywhere."""
+    return f"{src}{ARROW}{dst}"
 
 
 def count(value: int | None) -> str:

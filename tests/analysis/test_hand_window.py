@@ -90,7 +90,7 @@ def test_efficiency_and_speedup(result: dict) -> None:
 
 def test_links(result: dict) -> None:
     # n0→n1: 8 transfers, 2 × (1+2+3+4) MB = 20 MB; busy = 2 × (4 × 100 µs + 10 MB / 1 GB/s) = 20.8 ms,
-    # throughput = 20e6 / 0.0208; utilisation = 20e6 B / 41 s / 1.25e9 B/s.
+    # throughput = 20e6 / 0.0208; of nominal = that throughput / 1.25e9 B/s.
     # n1→n0: β = 0.5 GB/s, busy = 2 × (0.4 ms + 20 ms) = 40.8 ms; 0.5 GB/s < 0.5 × 1.25 GB/s → slow.
     # Scores: two links, log β differ by log 2, so M = ±0.6745 (each is one MAD from the median).
     links = {(lk["src"], lk["dst"]): lk for lk in result["links"]}
@@ -101,7 +101,8 @@ def test_links(result: dict) -> None:
     assert fwd["latency_s"] == pytest.approx(1e-4)
     assert fwd["throughput_Bps"] == pytest.approx(20e6 / 0.0208)
     assert fwd["nominal_Bps"] == pytest.approx(1.25e9)
-    assert fwd["utilisation"] == pytest.approx(20e6 / 41 / 1.25e9)
+    assert fwd["of_nominal"] == pytest.approx(20e6 / 0.0208 / 1.25e9)
+    assert not fwd["latency_clamped"]  # α = 100 µs was fitted, not clamped
     assert fwd["score"] == pytest.approx(0.6745) and not fwd["slow"]
     assert back["bandwidth_Bps"] == pytest.approx(5e8)
     assert back["throughput_Bps"] == pytest.approx(20e6 / 0.0408)

@@ -9,6 +9,8 @@ from __future__ import annotations
 import copy
 from typing import Any
 
+from watchtower.analysis.summary import HOW
+
 NODES = ["node-a", "node-b", "node-c", "node-d", "node-e", "node-f"]
 RANKS_PER_NODE = 4
 LAYERS = [
@@ -27,6 +29,7 @@ LAYERS = [
     ("grad.allreduce", 0.30, 4.20),
 ]
 NOMINAL = 12.5e9
+STEPS = 200  # steps in the window
 SLOW = ("node-c", "node-d")
 
 
@@ -47,6 +50,9 @@ def _layers(step: int) -> list[dict[str, Any]]:
                     "compute_s": compute,
                     "exchange_s": round(w_exchange, 6),
                     "comm_fraction": w_exchange / (compute + w_exchange),
+                    "compute_step_s": compute / STEPS,
+                    "exchange_step_s": round(w_exchange / STEPS, 9),
+                    "waits_on": {"rank": 8 + k, "node": NODES[2]} if k < 2 else None,
                 }
             )
         layers.append(
@@ -57,6 +63,8 @@ def _layers(step: int) -> list[dict[str, Any]]:
                 "comm_fraction": fraction,
                 "comm_fraction_worst": worst[0]["comm_fraction"],
                 "comm_bound": fraction > 0.5,
+                "per_step": {"compute_s": compute / STEPS, "exchange_s": exchange / STEPS,
+                             "compute_worst_s": compute * 1.2 / STEPS, "exchange_worst_s": exchange * 1.6 / STEPS},
                 "worst_ranks": worst,
             }
         )
@@ -79,17 +87,32 @@ def _links() -> list[dict[str, Any]]:
                     "bytes": 40_000_000_000 + 1_000_000 * (i * 6 + j),
                     "transfers": 2_400 + 10 * i + j,
                     "bandwidth_Bps": beta,
-                    "latency_s": 1.2e-5 + 1e-6 * ((i + j) % 3),
+                    "latency_s": 0.0 if slow else 1.2e-5 + 1e-6 * ((i + j) % 3),
+                    "latency_clamped": slow,
                     "throughput_Bps": throughput,
                     "nominal_Bps": NOMINAL,
-                    "utilisation": throughput / NOMINAL,
+                    "of_nominal": throughput / NOMINAL,
                     "slow": slow,
                     "score": -6.3 if slow else round(0.4 - 0.3 * ((i + 2 * j) % 5), 2),
                     "hours_at_stake": 1.3 if slow else 0.0,
-                    "port": "node-c out (ens1f0)" if slow else None,
+                    "port": "node-c out" if slow else None,
+                    "unexplained": False,
                 }
             )
     return links
+
+
+def _ports() -> list[dict[str, Any]]:
+    """Every node's way out and in; node-c's way out is slow and explains the slow link."""
+    ports = []
+    for name in NODES:
+        for direction in ("out", "in"):
+            slow = (name, direction) == (SLOW[0], "out")
+            ports.append({"node": name, "direction": direction, "capacity_Bps": 2.2e9 if slow else 11.0e9,
+                          "slow": slow, "reason": "outlier" if slow else "", "score": -5.9 if slow else 0.1,
+                          "explains": [list(SLOW)] if slow else [], "links": 5, "lower_bound": name == "node-f",
+                          "nominal_Bps": NOMINAL, "nic_Bps": None, "nic_disagrees": False, "shadowed_by": None})
+    return ports
 
 
 def _nodes() -> list[dict[str, Any]]:
@@ -109,34 +132,6 @@ def _nodes() -> list[dict[str, Any]]:
     ]
 
 
-HOW = {
-    "comm_fraction": "Share of a layer's time spent blocked in exchanges: E / (C + E), summed over the window, "
-    "on the mean rank and on the worst rank. Source: definition.",
-    "comm_bound": "A layer whose comm fraction exceeds 0.5 (configurable). Source: common practice.",
-    "comm_fraction_worst": "The comm fraction of the worst rank for the layer. Source: definition.",
-    "exchange_s": "Seconds a rank was blocked in communication, not hidden behind compute. Source: measured.",
-    "compute_s": "Seconds of useful compute in the layer over the window. Source: measured.",
-    "load_balance": "LB = mean_r(U_r) / max_r(U_r). Source: POP metrics (Wagner et al., 2017).",
-    "communication": "CommE = max_r(U_r) / T. Source: POP metrics.",
-    "parallel": "PE = LB × CommE. Source: POP metrics.",
-    "serialisation": "SerE = max_r(U_r) / T_ideal. Source: POP metrics.",
-    "transfer": "TE = T_ideal / T. Source: POP metrics.",
-    "speedup": "S = p × PE, against one ideal worker doing all the work. Source: definition, strong scaling.",
-    "lost_to_interconnect": "p × LB × (1 − CommE). Source: split of p − S.",
-    "lost_to_imbalance": "p × (1 − LB). Source: split of p − S.",
-    "bandwidth_Bps": "β of the link model t(n) = α + n/β, least squares per directed node pair. "
-    "Source: Hockney (1994).",
-    "latency_s": "α of the link model t(n) = α + n/β. Source: Hockney (1994).",
-    "utilisation": "Measured throughput over the link's nominal rate. Source: plain ratio.",
-    "score": "Modified z-score of log β against links of the same class; slow below −3.5. "
-    "Source: Iglewicz & Hoaglin (1993).",
-    "slow": "Score below −3.5, or β below a set fraction of nominal. Source: Iglewicz & Hoaglin (1993).",
-    "alerts": "One-sided CUSUM on per-link β and on step time, k = 0.5σ, h = 5σ. Source: Page (1954).",
-    "hours_at_stake": "Remaining steps × (predicted step time now − with the link at the fleet's median β). "
-    "Source: link model.",
-    "straggler": "A rank whose compute is an outlier by modified z-score. Source: Iglewicz & Hoaglin (1993).",
-    "clock_offset_s": "((t1−t0)+(t2−t3))/2 from a two-way timestamp exchange. Source: the usual NTP estimate.",
-}
 
 
 def make_snapshot(step: int = 1210, *, replay: bool = False, **overrides: Any) -> dict[str, Any]:
@@ -154,16 +149,7 @@ def make_snapshot(step: int = 1210, *, replay: bool = False, **overrides: Any) -
         "window": {"first_step": step - 199, "last_step": step, "steps": 200},
         "layers": _layers(step),
         "links": _links(),
-        "ports": [
-            {
-                "node": "node-c",
-                "direction": "out",
-                "capacity_Bps": 2.2e9,
-                "slow": True,
-                "score": -5.9,
-                "explains": [list(SLOW)],
-            }
-        ],
+        "ports": _ports(),
         "nodes": _nodes(),
         "stragglers": [{"rank": 13, "node": "node-d", "compute_s": 0.41, "score": 4.8}],
         "efficiency": {
@@ -209,7 +195,7 @@ def make_snapshot(step: int = 1210, *, replay: bool = False, **overrides: Any) -
             "mode": "insecure",
             "warning": "listening on 0.0.0.0:5555 without CURVE keys (--insecure)",
         },
-        "how": dict(HOW),
+        "how": {key: {"definition": text, "source": source} for key, (text, source) in HOW.items()},
         "replay": (
             {"step": step, "first_step": 0, "last_step": 2400, "speed": 2.0, "paused": False} if replay else None
         ),

@@ -23,6 +23,9 @@ VIEW_KEYS = {
     "alerts": ["4", "down"],
     "how": ["2", "question_mark"],
     "replay": [],
+    "keys": ["k"],
+    "frozen": ["space"],
+    "filtered": ["slash", *"block", "enter"],
 }
 SIZES = [(80, 24), (160, 48)]
 

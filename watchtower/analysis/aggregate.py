@@ -71,7 +71,9 @@ class LayerStats:
 
     ``compute_s``/``exchange_s`` are the mean reporting rank's time in that layer, summed over the window.
     ``comm_fraction`` is E/(C+E) of that mean rank; ``comm_fraction_worst`` the highest E/(C+E) of any
-    single rank, ``worst_rank`` its rank id (−1 when no rank reported).
+    single rank, ``worst_rank`` its rank id (−1 when no rank reported). ``step_*`` are the same times per
+    step (sums / the window's steps with a report), for the mean rank and for the rank with the most of each:
+    what a reader of one step's timeline expects to see.
     """
 
     names: tuple[str, ...]
@@ -82,6 +84,10 @@ class LayerStats:
     worst_rank: np.ndarray  # int64
     comm_bound: np.ndarray  # bool
     threshold: float
+    step_compute_s: np.ndarray
+    step_exchange_s: np.ndarray
+    step_compute_worst_s: np.ndarray
+    step_exchange_worst_s: np.ndarray
 
 
 def layer_stats(window: Window, sums: WindowSums, threshold: float = COMM_BOUND_THRESHOLD) -> LayerStats:
@@ -92,7 +98,7 @@ def layer_stats(window: Window, sums: WindowSums, threshold: float = COMM_BOUND_
     if len(c) == 0:
         nan = np.full(n_layers, np.nan)
         return LayerStats(window.layers, nan, nan, nan, nan, np.full(n_layers, -1), np.zeros(n_layers, bool),
-                          threshold)
+                          threshold, nan, nan, nan, nan)
     mean_c, mean_e = c.mean(axis=0), e.mean(axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = mean_e / (mean_c + mean_e)
@@ -101,5 +107,7 @@ def layer_stats(window: Window, sums: WindowSums, threshold: float = COMM_BOUND_
     worst_idx = np.argmax(np.where(np.isfinite(per_rank), per_rank, -1.0), axis=0)
     worst = np.where(has, per_rank[worst_idx, np.arange(n_layers)], np.nan)
     worst_rank = np.where(has, ranks[worst_idx], -1).astype(np.int64)
+    steps = int(np.count_nonzero(np.isfinite(sums.step_wall_s))) or np.nan
     return LayerStats(window.layers, mean_c, mean_e, fraction, worst, worst_rank,
-                      np.nan_to_num(fraction, nan=0.0) > threshold, threshold)
+                      np.nan_to_num(fraction, nan=0.0) > threshold, threshold, mean_c / steps, mean_e / steps,
+                      c.max(axis=0) / steps, e.max(axis=0) / steps)

@@ -1,4 +1,4 @@
-"""Per directed node pair: traffic, the Hockney fit, utilisation, slow-link verdicts and hours at stake.
+"""Per directed node pair: traffic, the Hockney fit, throughput against nominal, slow-link verdicts and hours at stake.
 
 Transfers between two ranks of the same node never touch the network (shared memory or the node's own
 fabric), so they are kept apart as *local* links: fitted and reported, but neither judged slow against
@@ -32,8 +32,9 @@ class LinkStats:
     ``bandwidth_Bps``/``latency_s`` are the Hockney β/α (α NaN when one message size gave no slope), β
     being the rate a transfer gets with the path to itself (see ``link_stats``); ``throughput_Bps`` = bytes
     / busy time (transfer time, known waits excluded), what the link's flows actually got, shares and all;
-    ``utilisation`` = bytes / window wall time / nominal rate. ``score`` is the modified z-score of log β
-    within the link's class.
+    ``of_nominal`` = throughput / nominal rate: how much of the rate on paper the flows got while moving.
+    ``latency_clamped`` marks an α whose fitted intercept was negative and is shown as 0. ``score`` is the
+    modified z-score of log β within the link's class.
     ``hours_at_stake`` is the time the rest of the run would save if this slow link ran at its class's
     median β (0 for links not judged slow; None without a configured total of steps). ``port`` names the
     slow port that limits a slow link and ``unexplained`` marks a slow link no port explains (both set by
@@ -53,17 +54,18 @@ class LinkStats:
     bandwidth_Bps: float
     throughput_Bps: float
     nominal_Bps: float | None
-    utilisation: float | None
+    of_nominal: float | None
     score: float
     slow: bool
     reason: str  # "" | "outlier" | "below-nominal" | "outlier, below-nominal"
     saving_per_step_s: float
     hours_at_stake: float | None
+    latency_clamped: bool = False
     port: str | None = None  # "<node> out" | "<node> in"
     unexplained: bool = False
 
 
-def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps: int | None, *,
+def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
                slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
     """All directed node pairs that carried traffic in the window, network links first, then local ones.
 
@@ -125,6 +127,8 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     # it too; only slow links' hours are added up as at stake.
     shrink = _shrink(beta, median_beta, local)
     saving = _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps), len(window.ranks))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        throughput = np.where(busy > 0, total_bytes / busy, np.nan)
     out = []
     for i in np.argsort(local, kind="stable"):
         nom = nominal[i]
@@ -133,11 +137,11 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
             src=int(src[i]), dst=int(dst[i]), src_name=names[src[i]], dst_name=names[dst[i]],
             link_class=classes[i], local=bool(local[i]), bytes=int(total_bytes[i]), transfers=int(count[i]),
             busy_s=float(busy[i]), latency_s=float(fit.alpha_s[i]), bandwidth_Bps=float(beta[i]),
-            throughput_Bps=float(total_bytes[i] / busy[i]) if busy[i] > 0 else float("nan"),
-            nominal_Bps=nom,
-            utilisation=None if nom is None or wall_s <= 0 else float(total_bytes[i] / wall_s / nom),
+            throughput_Bps=throughput[i], nominal_Bps=nom,
+            of_nominal=None if nom is None or not np.isfinite(throughput[i]) else float(throughput[i] / nom),
             score=float(score[i]), slow=bool(reason), reason=reason, saving_per_step_s=float(saving[i]),
             hours_at_stake=None if remaining_steps is None else remaining_steps * float(saving[i]) / 3600.0,
+            latency_clamped=bool(fit.clamped[i]),
         ))
     return tuple(out)
 

@@ -48,12 +48,14 @@ class HockneyFit:
     alpha_s: np.ndarray
     beta_Bps: np.ndarray
     sizes: np.ndarray  # int64, size bins used
+    clamped: np.ndarray  # bool: the line's intercept came out negative and α was set to 0 (α below the noise)
 
     def where(self, choose_other: np.ndarray, other: HockneyFit) -> HockneyFit:
         """Per group, this fit or ``other`` where ``choose_other`` is true."""
         return HockneyFit(np.where(choose_other, other.alpha_s, self.alpha_s),
                           np.where(choose_other, other.beta_Bps, self.beta_Bps),
-                          np.where(choose_other, other.sizes, self.sizes))
+                          np.where(choose_other, other.sizes, self.sizes),
+                          np.where(choose_other, other.clamped, self.clamped))
 
 
 def hockney_lstsq(nbytes: np.ndarray, seconds: np.ndarray, weights: np.ndarray | None = None) -> tuple[float, float]:
@@ -90,7 +92,7 @@ def fit_hockney(group: np.ndarray, nbytes: np.ndarray, seconds: np.ndarray, n_gr
     beta = np.full(n_groups, np.nan)
     sizes = np.zeros(n_groups, np.int64)
     if len(n) == 0:
-        return HockneyFit(alpha, beta, sizes)
+        return HockneyFit(alpha, beta, sizes, np.zeros(n_groups, bool))
 
     size_bin = np.floor(np.log2(n) * bins_per_octave).astype(np.int64)
     size_bin -= size_bin.min()
@@ -111,6 +113,7 @@ def fit_hockney(group: np.ndarray, nbytes: np.ndarray, seconds: np.ndarray, n_gr
     a, b = _wls_lines(bin_group, bin_n, bin_t, weight, n_groups)
     fitted = (sizes >= 2) & (b > 0) & np.isfinite(b)
     alpha[fitted] = np.maximum(a[fitted], 0.0)  # a negative intercept is noise around 0 latency
+    clamped = fitted & (a < 0)
     beta[fitted] = 1.0 / b[fitted]
     # One size only (or a non-positive slope from noise): the effective rate at the sizes seen.
     single = (sizes >= 1) & ~fitted
@@ -118,7 +121,7 @@ def fit_hockney(group: np.ndarray, nbytes: np.ndarray, seconds: np.ndarray, n_gr
         rate = np.bincount(bin_group, weights=weight * bin_n, minlength=n_groups) / np.bincount(
             bin_group, weights=weight * bin_t, minlength=n_groups)
     beta[single] = rate[single]
-    return HockneyFit(alpha, beta, sizes)
+    return HockneyFit(alpha, beta, sizes, clamped)
 
 
 def _wls_lines(group: np.ndarray, x: np.ndarray, y: np.ndarray, w: np.ndarray,

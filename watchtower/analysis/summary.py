@@ -99,7 +99,7 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         recent_step_s = _nanmean(sums.step_wall_s[-recent:])
     remaining = remaining_steps(cluster.total_steps, last_step)
 
-    links = link_stats(window, cluster, eff.wall_s, remaining, slow_fraction=slow_fraction)
+    links = link_stats(window, cluster, remaining, slow_fraction=slow_fraction)
     ports, links = port_stats(links, window.nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
     link_rates = None if history is None else link_rate_series(history, cluster)
     alerts = degradation_alerts(series, window.nodes, links=link_rates, warmup=warmup) if series is not None else ()
@@ -157,6 +157,8 @@ HOW: dict[str, tuple[str, str]] = {
     "speedup.lost_to_imbalance": ("workers × (1 − load balance)", "split of p − S = p(1−LB) + p·LB(1−CommE)"),
     "layers.compute_s": ("mean rank's compute in the layer, summed over the window", "plain sum"),
     "layers.exchange_s": ("mean rank's blocked exchange time in the layer, summed over the window", "plain sum"),
+    "layers.per_step": ("compute and exchange per step: the window's sums / the window's steps with a report, on "
+                        "the mean rank and on the worst rank (the rank with the most of it)", "plain mean"),
     "layers.comm_fraction": ("E / (C + E) of the mean rank, summed over the window", "definition"),
     "layers.comm_fraction_worst": ("highest E / (C + E) of any single rank", "definition"),
     "layers.comm_bound": ("comm fraction above the threshold (default 0.5)", "common practice, no source"),
@@ -177,7 +179,9 @@ HOW: dict[str, tuple[str, str]] = {
     "links.port": ("the slow port at either end that limits a slow link (link β ≥ 75 % of the port's capacity), "
                    "the slower if both; null with unexplained = true when no slow port does (the path "
                    "between them, a blocking switch, or the pair itself)", "definition; 75 %: no source"),
-    "links.latency_s": ("α of t(n) = α + n/β (none when only one message size was seen)", "Hockney (1994)"),
+    "links.latency_s": ("α of t(n) = α + n/β (none when only one message size was seen); latency_clamped when "
+                        "the fitted line crossed zero below the origin: α is then too small to tell from timer "
+                        "noise and is taken as 0, not measured as 0", "Hockney (1994)"),
     "links.throughput_Bps": ("bytes / time spent transferring (known waits excluded), shares and all",
                              "plain ratio"),
     "ports.capacity_Bps": ("highest β of the network links through the port (a pair's path is limited by the "
@@ -197,7 +201,8 @@ HOW: dict[str, tuple[str, str]] = {
     "ports.nic_Bps": ("the node's NIC-counter rate in that direction (psutil, loopback excluded); nic_disagrees "
                       "when it exceeds capacity by more than 10 %: unseen traffic shares the port",
                       "measured; 10 % margin for headers: common practice, no source"),
-    "links.utilisation": ("bytes / window wall time / nominal rate (lower of the two NICs)", "plain ratio"),
+    "links.of_nominal": ("throughput / nominal rate (lower of the two NICs): the share of the rate on paper that "
+                         "the pair's flows got while moving bytes", "plain ratio; throughput as links.throughput_Bps"),
     "links.score": ("modified z-score 0.6745 (x − median) / MAD of log β among links of the same class",
                     "Iglewicz & Hoaglin (1993)"),
     "links.slow": ("score < −3.5 or β under a third of its class's median (outlier), β below the set fraction "
@@ -256,7 +261,10 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
         "layers": [
             {"name": name, "compute_s": _f(lay.compute_s[i]), "exchange_s": _f(lay.exchange_s[i]),
              "comm_fraction": _f(lay.comm_fraction[i]), "comm_fraction_worst": _f(lay.comm_fraction_worst[i]),
-             "worst_rank": int(lay.worst_rank[i]), "comm_bound": bool(lay.comm_bound[i])}
+             "worst_rank": int(lay.worst_rank[i]), "comm_bound": bool(lay.comm_bound[i]),
+             "per_step": {"compute_s": _f(lay.step_compute_s[i]), "exchange_s": _f(lay.step_exchange_s[i]),
+                          "compute_worst_s": _f(lay.step_compute_worst_s[i]),
+                          "exchange_worst_s": _f(lay.step_exchange_worst_s[i])}}
             for i, name in enumerate(lay.names)],
         "comm_bound_threshold": lay.threshold,
         "links": [_link_json(lk) for lk in net],
@@ -291,8 +299,9 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
 def _link_json(lk: LinkStats) -> dict[str, Any]:
     return {"src": lk.src_name, "dst": lk.dst_name, "class": lk.link_class, "bytes": lk.bytes,
             "transfers": lk.transfers, "bandwidth_Bps": _f(lk.bandwidth_Bps), "latency_s": _f(lk.latency_s),
-            "throughput_Bps": _f(lk.throughput_Bps), "nominal_Bps": _f(lk.nominal_Bps),
-            "utilisation": _f(lk.utilisation), "slow": lk.slow, "reason": lk.reason, "score": _f(lk.score),
+            "latency_clamped": lk.latency_clamped, "throughput_Bps": _f(lk.throughput_Bps),
+            "nominal_Bps": _f(lk.nominal_Bps), "of_nominal": _f(lk.of_nominal), "slow": lk.slow, "reason": lk.reason,
+            "score": _f(lk.score),
             "hours_at_stake": _f(lk.hours_at_stake), "port": lk.port, "unexplained": lk.unexplained}
 
 

@@ -114,7 +114,7 @@ class AlertsView(TableView):
         table = self.table
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
         title = Text.assemble(
-            (f"{len(table.rows)} alerts", self.paint("title")),
+            (fmt.counted(len(table.rows), "alert"), self.paint("title")),
             f" by {table.sort_key.label} {arrow} · steps when the drift began and when it was detected",
         )
         self.query_one("#alerts-title", Static).update(title)

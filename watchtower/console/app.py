@@ -4,30 +4,42 @@ from __future__ import annotations
 
 import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any, ClassVar
 
+from textual import events
 from textual.app import App, ComposeResult
 from textual.binding import Binding, BindingType
+from textual.containers import Vertical
 from textual.message import Message
 from textual.reactive import reactive
 from textual.timer import Timer
-from textual.widgets import ContentSwitcher, Footer, Static
+from textual.widgets import ContentSwitcher, DataTable, Footer, Input, Static
 
 from .alerts import AlertsView
+from .culprit import CulpritStrip
+from .export import export_view
 from .feed import Feed, ReplayControls, Snapshot
 from .header import JobHeader
 from .howto import HowView
+from .keys import KeysScreen
 from .layers import LayersView
 from .links import LinksView
 from .nodes import NodesView
 from .replaybar import ReplayBar
 from .throttle import Throttle
-from .view import SnapshotView
+from .view import SnapshotView, TableView
 from .viewbar import VIEWS, ViewBar
 
 REPLAY_ACTIONS = frozenset({"pause_resume", "step_once", "seek", "seek_edge", "speed"})
-VIEW_ACTIONS = frozenset({"show_view", "next_view", "previous_view", "how", "back"})
+VIEW_ACTIONS = frozenset({"show_view", "next_view", "previous_view", "how", "back", "filter", "export"})
 SPEED_LIMITS = (1 / 16, 64.0)
+MIN_SIZE = (56, 14)
+"""Below this many columns and rows the views cannot be drawn without wrapping into nonsense."""
+FOLD_BELOW_ROWS = 30
+"""Fewer rows than this fold the header to two lines, so the views keep room for rows."""
+LOW_BANDWIDTH_INTERVAL_S = 1.0
+"""The longest redraw period a low-bandwidth console waits; a slow link gets at most one frame a second."""
 _SEEK = Binding.Group("seek", compact=True)
 _SPEED = Binding.Group("speed", compact=True)
 
@@ -44,7 +56,11 @@ class ConsoleApp(App[None]):
         Binding("question_mark", "how", "how computed"),
         Binding("k", "keys", "keys"),
         Binding("q", "quit", "quit"),
+        Binding("ctrl+c", "quit", "quit", show=False, priority=True),
+        Binding("slash", "filter", "filter", show=False),
+        Binding("w", "export", "write", show=False),
         Binding("space", "pause_resume", "pause/play"),
+        Binding("space", "freeze", "freeze"),
         Binding("full_stop", "step_once", "step", show=False),
         Binding("left_square_bracket", "seek(-1)", "back", group=_SEEK),
         Binding("right_square_bracket", "seek(1)", "forward", group=_SEEK),
@@ -58,6 +74,8 @@ class ConsoleApp(App[None]):
     """The newest snapshot drawn on screen."""
     view: reactive[str] = reactive("layers", init=False)
     """Id of the view filling the main area."""
+    frozen: reactive[bool] = reactive(False, init=False)
+    """Live only: the view stays as it is while newer snapshots are held back (the feed keeps ingesting)."""
 
     class SnapshotArrived(Message):
         """A feed delivered a snapshot; posted from the feed's thread, handled on the app's loop."""
@@ -73,33 +91,69 @@ class ConsoleApp(App[None]):
         clock: Callable[[], float] = time.monotonic,
         redraw_interval_s: float = 0.25,
         seek_steps: int = 100,
+        low_bandwidth: bool = False,
+        export_dir: Path | None = None,
     ) -> None:
-        """`clock` and `redraw_interval_s` set the redraw throttle; `seek_steps` is one `[`/`]` jump."""
+        """`clock` and `redraw_interval_s` set the redraw throttle; `seek_steps` is one `[`/`]` jump.
+
+        `low_bandwidth` redraws at most once a second and leaves out decoration (sparklines, bars, stripes):
+        for a console over a slow remote link. `w` writes the view's rows into `export_dir` (default: the
+        current folder)."""
         super().__init__()
         self.feed = feed
         self.seek_steps = seek_steps
+        self.low_bandwidth = low_bandwidth
+        self.export_dir = export_dir or Path.cwd()
+        if low_bandwidth:
+            redraw_interval_s = max(redraw_interval_s, LOW_BANDWIDTH_INTERVAL_S)
         self._throttle: Throttle[Snapshot] = Throttle(redraw_interval_s, clock)
         self._redraw_timer: Timer | None = None
         self._view_before_how = "layers"
+        self._asked: dict[str, Any] = {}  # replay state asked for by keys and not yet confirmed by the feed
+        self._held: Snapshot | None = None  # the newest snapshot while frozen
 
     def compose(self) -> ComposeResult:
-        yield JobHeader()
-        yield ViewBar()
-        yield ReplayBar()
-        with ContentSwitcher(initial="layers", id="views"):
-            yield LayersView()
-            yield LinksView()
-            yield NodesView()
-            yield AlertsView()
-            yield HowView()
-        yield Static(id="detail")
-        yield Footer(compact=True, show_command_palette=False)
+        with Vertical(id="main"):
+            yield JobHeader()
+            yield CulpritStrip()
+            yield ViewBar()
+            yield ReplayBar()
+            with ContentSwitcher(initial="layers", id="views"):
+                yield LayersView()
+                yield LinksView()
+                yield NodesView()
+                yield AlertsView()
+                yield HowView()
+            yield Input(placeholder="filter rows by name · enter keeps · esc clears", id="filter")
+            yield Static(id="detail")
+            yield Footer(compact=True, show_command_palette=False)
+        yield Static(id="too-small")
 
     def on_mount(self) -> None:
         """Start the feed in a thread; it only ever posts messages back."""
         self.query_one(ReplayBar).display = False
+        if self.low_bandwidth:
+            self.query_one(JobHeader).plain = True
+            for view in self.query(SnapshotView):
+                view.plain = True
+            for table in self.query("RecordTable").results(DataTable):
+                table.zebra_stripes = False
+        self._fit_terminal(self.size.width, self.size.height)
         self._focus_view()
         self.run_worker(self._run_feed, thread=True, name="feed", group="feed")
+
+    def on_resize(self, event: events.Resize) -> None:
+        """Fold the header on short terminals; below the minimum size, say so instead of drawing garbage."""
+        self._fit_terminal(event.size.width, event.size.height)
+
+    def _fit_terminal(self, width: int, height: int) -> None:
+        small = width < MIN_SIZE[0] or height < MIN_SIZE[1]
+        self.query_one("#main").display = not small
+        notice = self.query_one("#too-small", Static)
+        notice.display = small
+        notice.update(f"terminal too small: {width}×{height}\nWatchtower needs at least {MIN_SIZE[0]}×{MIN_SIZE[1]}"
+                      "\n\nq quits")
+        self.query_one(JobHeader).folded = height < FOLD_BELOW_ROWS
 
     def on_unmount(self) -> None:
         """Let the feed's thread return so the process can exit."""
@@ -113,7 +167,11 @@ class ConsoleApp(App[None]):
         self.post_message(self.SnapshotArrived(snapshot))
 
     def on_console_app_snapshot_arrived(self, message: SnapshotArrived) -> None:
-        """Keep only the newest snapshot and draw it when the throttle allows."""
+        """Keep only the newest snapshot and draw it when the throttle allows (held while frozen)."""
+        if self.frozen:
+            self._held = message.snapshot
+            self.query_one(ReplayBar).newest_step = message.snapshot["last_step"]
+            return
         self._throttle.offer(message.snapshot)
         self.draw_due()
 
@@ -139,9 +197,27 @@ class ConsoleApp(App[None]):
         if snapshot is None:
             return
         self.query_one(JobHeader).snapshot = snapshot
+        self.query_one(CulpritStrip).snapshot = snapshot
         self.query_one(ViewBar).alerts = len(snapshot["alerts"])
-        self.query_one(ReplayBar).position = snapshot["replay"]
+        self.query_one(ReplayBar).position = self._shown_position(snapshot["replay"])
         self.current_view.snapshot = snapshot
+
+    def _shown_position(self, position: dict[str, Any] | None) -> dict[str, Any] | None:
+        """The replay position with what the keys asked for and the feed has not confirmed yet.
+
+        A paused feed delivers nothing more, so its last word still says "playing": the bar shows what was
+        asked and the next key starts from it, so pause/play never wedges and every `+`/`-` counts."""
+        if position is None:
+            return None
+        seeking = self._asked.get("seek")
+        if seeking is not None:
+            target, start = seeking
+            if position["step"] >= target and (target >= start or position["step"] < start):
+                del self._asked["seek"]
+        for key in ("paused", "speed"):
+            if key in self._asked and self._asked[key] == position[key]:
+                del self._asked[key]
+        return {**position, **self._asked}
 
     def watch_view(self, view: str) -> None:
         """Switch the main area and bring the new view up to date."""
@@ -164,11 +240,13 @@ class ConsoleApp(App[None]):
                 detail.update(message.text)
 
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
-        """Replay keys exist only for a replay; view keys only on the main screen."""
+        """Replay keys exist only for a replay; view keys only on the main screen and not while typing."""
         if action in REPLAY_ACTIONS:
-            return self.feed.controls is not None
+            return self.feed.controls is not None and self.screen is self.screen_stack[0]
+        if action == "freeze":
+            return self.feed.controls is None and self.screen is self.screen_stack[0]
         if action in VIEW_ACTIONS:
-            return self.screen is self.screen_stack[0]
+            return self.screen is self.screen_stack[0] and not isinstance(self.focused, Input)
         return True
 
     def action_show_view(self, view: str) -> None:
@@ -201,24 +279,99 @@ class ConsoleApp(App[None]):
             self.view = self._view_before_how
 
     def action_keys(self) -> None:
-        """Toggle the panel listing every key that works here."""
-        if self.screen.query("HelpPanel"):
-            self.action_hide_help_panel()
+        """Show our own list of the keys that work here (`k` or escape closes it)."""
+        if isinstance(self.screen, KeysScreen):
+            self.screen.dismiss()
         else:
-            self.action_show_help_panel()
+            self.push_screen(KeysScreen(replay=self.feed.controls is not None))
+
+    def action_filter(self) -> None:
+        """Open the filter line for the view's rows."""
+        if not isinstance(self.current_view, TableView):
+            self.notify("This view has no rows to filter.")
+            return
+        box = self.query_one("#filter", Input)
+        box.display = True
+        box.value = self.current_view.table.filter_text
+        box.focus()
+
+    def on_input_changed(self, event: Input.Changed) -> None:
+        """Filter as the user types."""
+        if event.input.id == "filter" and isinstance(self.current_view, TableView):
+            self.current_view.table.filter_text = event.value
+            self.current_view.on_record_table_sort_changed()
+
+    def on_input_submitted(self, event: Input.Submitted) -> None:
+        """Keep the filter and go back to the rows."""
+        if event.input.id == "filter":
+            self._close_filter(clear=False)
+
+    def on_key(self, event: events.Key) -> None:
+        """Escape in the filter line clears the filter."""
+        if event.key == "escape" and isinstance(self.focused, Input) and self.focused.id == "filter":
+            event.stop()
+            self._close_filter(clear=True)
+
+    def _close_filter(self, clear: bool) -> None:
+        box = self.query_one("#filter", Input)
+        if clear:
+            box.value = ""
+        box.display = bool(box.value)
+        self._focus_view()
+
+    def action_export(self) -> None:
+        """Write the view's rows as shown (CSV) and as the snapshot has them (JSON)."""
+        view = self.current_view
+        if not isinstance(view, TableView) or self.snapshot is None:
+            self.notify("This view has no rows to write.")
+            return
+        try:
+            paths = export_view(view.table, view.id or "view", self.snapshot["last_step"], self.export_dir)
+        except OSError as exc:
+            self.notify(f"could not write the view: {exc}", severity="error")
+            return
+        self.notify("wrote " + " and ".join(str(p) for p in paths))
 
     def _replay(self) -> tuple[ReplayControls, dict[str, Any] | None]:
         controls = self.feed.controls
         assert controls is not None, "check_action admits replay keys only when the feed has controls"
-        return controls, None if self.snapshot is None else self.snapshot["replay"]
+        if self.snapshot is None or self.snapshot["replay"] is None:
+            return controls, None
+        return controls, {**self.snapshot["replay"], **self._asked}
+
+    def _ask(self, **state: Any) -> None:
+        """Remember what a key asked of the replay and show it at once."""
+        self._asked.update(state)
+        if self.snapshot is not None:
+            self.query_one(ReplayBar).position = self._shown_position(self.snapshot["replay"])
+
+    def action_freeze(self) -> None:
+        """Live: hold the view still (the feed keeps ingesting), or follow the feed again."""
+        self.frozen = not self.frozen
 
     def action_pause_resume(self) -> None:
-        """Pause a playing replay, resume a paused one."""
+        """Pause a playing replay, resume a paused one; at the end, play again from the start."""
         controls, position = self._replay()
-        if position is not None and position["paused"]:
+        if position is not None and position["paused"] and position["step"] >= position["last_step"]:
+            controls.seek(position["first_step"])
             controls.resume()
+            self._ask(paused=False, seek=(position["first_step"], position["step"]))
+        elif position is not None and position["paused"]:
+            controls.resume()
+            self._ask(paused=False)
         else:
             controls.pause()
+            self._ask(paused=True)
+
+    def watch_frozen(self, frozen: bool) -> None:
+        """Say that the view is frozen; on thawing, draw the newest snapshot held meanwhile."""
+        bar = self.query_one(ReplayBar)
+        bar.frozen_step = self.snapshot["last_step"] if frozen and self.snapshot is not None else None
+        bar.newest_step = bar.frozen_step
+        if not frozen and self._held is not None:
+            held, self._held = self._held, None
+            self._throttle.offer(held)
+            self.draw_due()
 
     def action_step_once(self) -> None:
         """Advance a paused replay by one step."""
@@ -231,8 +384,10 @@ class ConsoleApp(App[None]):
         if position is None:
             self.notify("No replay position yet.")
             return
-        target = position["step"] + jumps * self.seek_steps
-        controls.seek(min(max(target, position["first_step"]), position["last_step"]))
+        base = position["seek"][0] if position.get("seek") else position["step"]  # presses during a seek add up
+        target = min(max(base + jumps * self.seek_steps, position["first_step"]), position["last_step"])
+        controls.seek(target)
+        self._ask(seek=(target, position["step"]))
 
     def action_seek_edge(self, edge: str) -> None:
         """Jump to the first or the last step of the recording."""
@@ -240,11 +395,15 @@ class ConsoleApp(App[None]):
         if position is None:
             self.notify("No replay position yet.")
             return
-        controls.seek(position["first_step"] if edge == "start" else position["last_step"])
+        target = position["first_step"] if edge == "start" else position["last_step"]
+        controls.seek(target)
+        self._ask(seek=(target, position["step"]))
 
     def action_speed(self, factor: float) -> None:
         """Multiply the replay speed, within 1/16× and 64×."""
         controls, position = self._replay()
         speed = 1.0 if position is None else position["speed"]
         low, high = SPEED_LIMITS
-        controls.set_speed(min(max(speed * factor, low), high))
+        speed = min(max(speed * factor, low), high)
+        controls.set_speed(speed)
+        self._ask(speed=speed)

@@ -1,4 +1,5 @@
-"""Drill-down from a layer to its worst ranks: which rank and node make the layer communication-bound."""
+"""Drill-down from a layer to its worst ranks: which rank and node make the layer communication-bound, and
+whom each of them waits on, so a victim points to its cause (a slow port, a straggler)."""
 
 from __future__ import annotations
 
@@ -17,12 +18,26 @@ from .feed import Snapshot
 from .table import ColumnSpec, Record, RecordTable, SortKey
 
 SORT_KEYS = (
-    SortKey("comm share", lambda r: r["comm_fraction"], how=("comm_fraction_worst", "comm_fraction")),
-    SortKey("exchange", lambda r: r["exchange_s"], how=("exchange_s",)),
-    SortKey("compute", lambda r: r["compute_s"], how=("compute_s",)),
-    SortKey("rank", lambda r: r["rank"], descending=False, how=("worst_ranks",)),
+    SortKey("comm share", lambda r: r["comm_fraction"], how=("layers.comm_fraction_worst",)),
+    SortKey("exch/step", lambda r: r.get("exchange_step_s"), how=("layers.per_step",)),
+    SortKey("comp/step", lambda r: r.get("compute_step_s"), how=("layers.per_step",)),
+    SortKey("rank", lambda r: r["rank"], descending=False, how=("layers.comm_fraction_worst",)),
 )
 BAR_WIDTH = 14
+
+
+def waiting_on(rank: Record, snapshot: Snapshot) -> str:
+    """Whom a rank waits on, named by the cause: the slow port on the sender's path, a straggler sender,
+    a slow link no port explains, else just the sender; empty when it received nothing in the layer."""
+    peer = rank.get("waits_on")
+    if not peer:
+        return ""
+    if any(st["rank"] == peer["rank"] for st in snapshot.get("stragglers", [])):
+        return f"rank {peer['rank']}, straggler"
+    link = next((lk for lk in snapshot["links"] if (lk["src"], lk["dst"]) == (peer["node"], rank["node"])), None)
+    if link is not None and link["slow"]:
+        return f"port {link['port']}" if link["port"] else f"slow link {fmt.link(link['src'], link['dst'])}"
+    return f"rank {peer['rank']} on {peer['node']}"
 
 
 class WorstRanksScreen(ModalScreen[None]):
@@ -49,19 +64,28 @@ class WorstRanksScreen(ModalScreen[None]):
 
     def on_mount(self) -> None:
         """Draw from the app's newest snapshot now and whenever it changes."""
-        table = self.query_one(RecordTable)
-        table.set_columns(
-            [
-                ColumnSpec("rank", 5),
-                ColumnSpec("node", 12),
-                ColumnSpec("compute", 8),
-                ColumnSpec("exchange", 8),
-                ColumnSpec("time", BAR_WIDTH),
-                ColumnSpec("comm", 4),
-            ]
-        )
         self.watch(self.app, "snapshot", self._show)
-        table.focus()
+        self.query_one(RecordTable).focus()
+
+    def on_resize(self) -> None:
+        """Lay the columns out again for the new width."""
+        snapshot = getattr(self.app, "snapshot", None)
+        if snapshot is not None:
+            self._show(snapshot)
+
+    def _columns(self, ranks: list[Record]) -> list[ColumnSpec]:
+        """Names whole (the node and the cause are what the reader came for); the bar goes first."""
+        node_width = max((fmt.literal(r["node"]).cell_len for r in ranks), default=4)
+        cause_width = max((fmt.literal(r["_waits"]).cell_len for r in ranks), default=0)
+        return [
+            ColumnSpec("rank", 5),
+            ColumnSpec("node", max(node_width, 4)),
+            ColumnSpec("comp/step", 9),
+            ColumnSpec("exch/step", 9),
+            ColumnSpec("comm", fmt.PERCENT_WIDTH),
+            ColumnSpec("waiting on", max(cause_width, 10)),
+            ColumnSpec("time", BAR_WIDTH, drop=1),
+        ]
 
     def _paint(self, name: str) -> Style:
         return self.get_component_rich_style(f"ranks--{name}", partial=True)
@@ -82,13 +106,16 @@ class WorstRanksScreen(ModalScreen[None]):
             title.update(Text.assemble("layer ", fmt.literal(self.layer_name), " is no longer reported"))
             table.set_records([])
             return
-        ranks = layer["worst_ranks"]
-        self._scale = max(((r["compute_s"] or 0.0) + (r["exchange_s"] or 0.0) for r in ranks), default=0.0)
+        ranks = [{**r, "_waits": waiting_on(r, snapshot)} for r in layer["worst_ranks"]]
+        self._scale = max(((r.get("compute_step_s") or 0.0) + (r.get("exchange_step_s") or 0.0) for r in ranks),
+                          default=0.0)
+        table.set_columns(self._columns(ranks), self.query_one("#ranks-box").content_size.width - 2)
         title.update(
             Text.assemble(
                 ("worst ranks of layer ", self._paint("quiet")),
                 fmt.literal(layer["name"]),
-                f"\ncomm {fmt.percent(layer['comm_fraction'])} on the mean rank, "
+                "\ntimes per step · ",
+                f"comm {fmt.percent(layer['comm_fraction'])} on the mean rank, "
                 f"{fmt.percent(layer['comm_fraction_worst'])} on the worst",
                 " · COMM-BOUND" if layer["comm_bound"] else "",
             )
@@ -101,7 +128,10 @@ class WorstRanksScreen(ModalScreen[None]):
         rank = self.query_one(RecordTable).record_at_cursor()
         line = Text()
         if rank is not None:
-            line = Text.assemble(f"rank {rank['rank']} on ", fmt.literal(rank["node"]), " · ")
+            line = Text.assemble(f"rank {rank['rank']} on ", fmt.literal(rank["node"]))
+            if rank["_waits"]:
+                line.append_text(Text.assemble(" waits on ", fmt.literal(rank["_waits"])))
+            line.append(" · ")
         line.append("█ compute ░ exchange · s: sort · r: reverse · esc: back to layers", self._paint("quiet"))
         self.query_one("#ranks-help", Static).update(line)
 
@@ -110,13 +140,14 @@ class WorstRanksScreen(ModalScreen[None]):
         self._describe()
 
     def _cells(self, rank: Record) -> list[Text]:
-        compute_bar, exchange_bar = fmt.split_bar(rank["compute_s"] or 0.0, rank["exchange_s"] or 0.0, self._scale,
-                                                  BAR_WIDTH)
+        compute, exchange = rank.get("compute_step_s"), rank.get("exchange_step_s")
+        compute_bar, exchange_bar = fmt.split_bar(compute or 0.0, exchange or 0.0, self._scale, BAR_WIDTH)
         return [
             Text(str(rank["rank"]), justify="right"),
-            fmt.fit(fmt.literal(rank["node"]), 12),
-            Text(fmt.seconds(rank["compute_s"]), justify="right"),
-            Text(fmt.seconds(rank["exchange_s"]), justify="right"),
-            Text.assemble((compute_bar, self._paint("compute")), (exchange_bar, self._paint("exchange"))),
+            fmt.literal(rank["node"]),
+            Text(fmt.seconds(compute), justify="right"),
+            Text(fmt.seconds(exchange), justify="right"),
             Text(fmt.percent(rank["comm_fraction"]), justify="right"),
+            fmt.literal(rank["_waits"]),
+            Text.assemble((compute_bar, self._paint("compute")), (exchange_bar, self._paint("exchange"))),
         ]

@@ -12,8 +12,15 @@ from collections.abc import Iterable, Sequence
 from rich.text import Text
 
 from watchtower.units import (  # noqa: F401 - the console's formatting vocabulary, re-exported as fmt.*
+    ARROW,
+    HOURS_WIDTH,
     MISSING,
+    PERCENT_WIDTH,
+    RATE_WIDTH,
+    SECONDS_WIDTH,
+    SIGNED_SECONDS_WIDTH,
     count,
+    counted,
     duration,
     hours,
     number,
@@ -22,6 +29,7 @@ from watchtower.units import (  # noqa: F401 - the console's formatting vocabula
     rate,
     seconds,
     signed_seconds,
+    size,
     visible,
 )
 

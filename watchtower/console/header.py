@@ -28,23 +28,30 @@ class JobHeader(Widget):
 
     snapshot: reactive[Snapshot | None] = reactive(None, always_update=True, layout=True)
     """The snapshot whose job-wide figures are shown."""
+    folded: reactive[bool] = reactive(False, layout=True)
+    """Two lines instead of five, for short terminals (the standing insecure line stays)."""
+    plain: reactive[bool] = reactive(False)
+    """Low-bandwidth mode: no sparkline, whose every change costs a redraw of its line."""
 
     def _style(self, name: str) -> Style:
         return self.get_component_rich_style(f"header--{name}", partial=True)
 
     def render(self) -> Text:
-        """Lay the figures out for the current width; long lines end in an ellipsis (full text in `how`)."""
+        """Lay the figures out for the current width: whole figures, as many as fit (all of them in `how`)."""
         width = max(self.size.width, 20)
         snap = self.snapshot
         if snap is None:
             return Text.assemble(("WATCHTOWER", self._style("title")), "  waiting for the first snapshot…")
-        lines = [
-            self._identity(snap, width),
-            self._pace(snap, width),
-            self._efficiency(snap),
-            self._speedup(snap),
-            self._stakes(snap),
-        ]
+        if self.folded:
+            lines = [self._identity(snap, width), _join(self._summary(snap), width)]
+        else:
+            lines = [
+                self._identity(snap, width),
+                self._pace(snap, width),
+                _join(self._efficiency(snap), width),
+                _join(self._speedup(snap), width),
+                _join(self._stakes(snap), width),
+            ]
         if snap["security"]["mode"] == "insecure":
             lines.append(self._insecure(snap, width))
         for line in lines:
@@ -85,63 +92,95 @@ class JobHeader(Widget):
 
     def _pace(self, snap: Snapshot, width: int) -> Text:
         step_time = snap["step_time"]
-        line = Text.assemble(
-            self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
-            " ",
-            self._figure("on", f"{len(snap['nodes'])} nodes"),
-            SEPARATOR,
+        line = _join([
+            Text.assemble(
+                self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
+                " ",
+                self._figure("on", fmt.counted(len(snap["nodes"]), "node")),
+            ),
             self._figure("step", fmt.count(snap["last_step"])),
-            SEPARATOR,
-            self._figure("", _rate(snap["steps_per_s"])),
-            SEPARATOR,
             self._figure("step time", fmt.seconds(step_time["recent_s"])),
-            " ",
-        )
-        room = min(24, width - line.cell_len)
-        line.append(fmt.sparkline(step_time["trend"], room), self._style("title"))
+            self._figure("", _rate(snap["steps_per_s"])),
+        ], width)
+        line.append(" ")
+        if not self.plain:
+            room = min(24, width - line.cell_len)
+            line.append(fmt.sparkline(step_time["trend"], room), self._style("title"))
         return line
 
-    def _efficiency(self, snap: Snapshot) -> Text:
-        eff = snap["efficiency"]
-        return Text.assemble(
-            self._figure("efficiency", fmt.percent(eff["parallel"])),
-            self._figure(" = balance", fmt.percent(eff["load_balance"])),
-            self._figure(" × comm", fmt.percent(eff["communication"])),
-            SEPARATOR,
-            self._figure("serialisation", fmt.percent(eff["serialisation"])),
-            self._figure(" × transfer", fmt.percent(eff["transfer"])),
-        )
+    def _summary(self, snap: Snapshot) -> list[Text]:
+        """The folded header's second line: the figures a glance needs, most telling first."""
+        lost = snap["speedup"]["lost_to_interconnect"]
+        stake = snap["hours_at_stake"]
+        loss = snap["loss"]
+        return [
+            Text.assemble(self._figure("step", fmt.count(snap["last_step"])), " ",
+                          self._figure("", fmt.seconds(snap["step_time"]["recent_s"]) + "/step")),
+            Text.assemble(
+                self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
+                self._figure(" missing", fmt.count(loss["missing"]), bad=loss["missing"] > 0),
+                self._figure(" bad", fmt.count(loss["bad"]), bad=loss["bad"] > 0),
+            ),
+            self._figure("at stake", fmt.hours(stake), bad=stake is not None and stake > 0),
+            self._figure("efficiency", fmt.percent(snap["efficiency"]["parallel"])),
+            self._figure("lost to interconnect", fmt.number(lost), bad=lost is not None and lost >= 0.5),
+            self._figure("ETA", fmt.duration(snap["eta_s"])),
+        ]
 
-    def _speedup(self, snap: Snapshot) -> Text:
+    def _efficiency(self, snap: Snapshot) -> list[Text]:
+        eff = snap["efficiency"]
+        return [
+            Text.assemble(
+                self._figure("efficiency", fmt.percent(eff["parallel"])),
+                self._figure(" = balance", fmt.percent(eff["load_balance"])),
+                self._figure(" × comm", fmt.percent(eff["communication"])),
+            ),
+            Text.assemble(
+                self._figure("serialisation", fmt.percent(eff["serialisation"])),
+                self._figure(" × transfer", fmt.percent(eff["transfer"])),
+            ),
+        ]
+
+    def _speedup(self, snap: Snapshot) -> list[Text]:
         speed = snap["speedup"]
         lost = speed["lost_to_interconnect"]
-        return Text.assemble(
+        return [
             self._figure("speedup", f"{fmt.number(speed['achieved'])} of {speed['workers']} workers"),
-            SEPARATOR,
             self._figure("lost to interconnect", fmt.number(lost), bad=lost is not None and lost >= 0.5),
-            SEPARATOR,
             self._figure("to imbalance", fmt.number(speed["lost_to_imbalance"])),
-        )
+        ]
 
-    def _stakes(self, snap: Snapshot) -> Text:
+    def _stakes(self, snap: Snapshot) -> list[Text]:
         loss = snap["loss"]
         stake = snap["hours_at_stake"]
-        return Text.assemble(
-            self._figure("ETA", fmt.duration(snap["eta_s"])),
-            SEPARATOR,
+        return [
             self._figure("at stake", fmt.hours(stake), bad=stake is not None and stake > 0),
-            SEPARATOR,
-            self._figure("frames", fmt.count(loss["frames"])),
-            self._figure(" missing", fmt.count(loss["missing"]), bad=loss["missing"] > 0),
-            self._figure(" bad", fmt.count(loss["bad"]), bad=loss["bad"] > 0),
-            self._figure(" dropped", fmt.count(loss["dropped_at_senders"]), bad=loss["dropped_at_senders"] > 0),
-        )
+            self._figure("ETA", fmt.duration(snap["eta_s"])),
+            Text.assemble(
+                self._figure("frames", fmt.count(loss["frames"])),
+                self._figure(" missing", fmt.count(loss["missing"]), bad=loss["missing"] > 0),
+                self._figure(" bad", fmt.count(loss["bad"]), bad=loss["bad"] > 0),
+                self._figure(" dropped", fmt.count(loss["dropped_at_senders"]), bad=loss["dropped_at_senders"] > 0),
+            ),
+        ]
 
     def _insecure(self, snap: Snapshot, width: int) -> Text:
         warning = snap["security"]["warning"] or "frames are accepted from anyone who can reach the port"
         line = Text.assemble("▲ INSECURE TRANSPORT: ", fmt.literal(warning), style=self._style("alarm"))
         line.pad_right(max(0, width - line.cell_len))
         return line
+
+
+def _join(parts: list[Text], width: int) -> Text:
+    """Whole figures separated by dots, as many as fit in `width`: a figure is left out, never cut."""
+    line = Text()
+    for part in parts:
+        gap = SEPARATOR if line.cell_len else ""
+        if line.cell_len and line.cell_len + len(gap) + part.cell_len > width:
+            break
+        line.append(gap)
+        line.append_text(part)
+    return line
 
 
 def _rate(steps_per_s: float | None) -> str:

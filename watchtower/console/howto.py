@@ -20,6 +20,65 @@ from .view import SnapshotView
 ABOUT = "\x00about"
 """Option id of the first topic, the run itself (kept out of the wire's key space by the NUL)."""
 
+TITLES: dict[str, str] = {
+    "efficiency.load_balance": "Load balance",
+    "efficiency.communication": "Communication efficiency",
+    "efficiency.parallel": "Parallel efficiency",
+    "efficiency.serialisation": "Serialisation efficiency",
+    "efficiency.transfer": "Transfer efficiency",
+    "speedup.achieved": "Speedup",
+    "speedup.lost_to_interconnect": "Lost to the interconnect",
+    "speedup.lost_to_imbalance": "Lost to imbalance",
+    "layers.compute_s": "Layer compute",
+    "layers.exchange_s": "Layer exchange",
+    "layers.per_step": "Layer times per step",
+    "layers.comm_fraction": "Comm share",
+    "layers.comm_fraction_worst": "Comm share, worst rank",
+    "layers.comm_bound": "Comm-bound layer",
+    "links.bandwidth_Bps": "Link bandwidth β",
+    "links.concurrency": "Flows sharing a port",
+    "links.port": "Port behind a slow link",
+    "links.latency_s": "Link latency α",
+    "links.throughput_Bps": "Link throughput",
+    "links.of_nominal": "Throughput of nominal",
+    "links.score": "Link score",
+    "links.slow": "Slow link",
+    "links.hours_at_stake": "Link hours at stake",
+    "ports.capacity_Bps": "Port capacity",
+    "ports.lower_bound": "Capacity as a lower bound",
+    "ports.score": "Port score",
+    "ports.slow": "Slow port",
+    "ports.shadowed_by": "Port held by the other way",
+    "ports.nic_Bps": "NIC counter rate",
+    "stragglers": "Straggler rank",
+    "alerts": "Alerts",
+    "eta_s": "Time to finish",
+    "hours_at_stake": "Hours at stake",
+    "whatif": "What-if projections",
+    "serial_fraction": "Serial fraction",
+}
+"""Human titles of the figures the analysis defines; a figure not listed gets one made from its key."""
+
+
+def title(key: str) -> str:
+    """The name a reader sees for a figure: its title, else its key in words ("ports.nic_Bps" → "Ports: nic")."""
+    if key in TITLES:
+        return TITLES[key]
+    group, _, name = key.rpartition(".")
+    words = re.sub(r"_(s|Bps)$", "", name).replace("_", " ")
+    return f"{group.capitalize()}: {words}" if group else words.capitalize()
+
+
+def definition(entry: object) -> Text:
+    """A figure's definition and source as prose; a snapshot may carry either a dict or a plain string."""
+    if isinstance(entry, dict):
+        text = fmt.literal(entry.get("definition", ""), wrap=True)
+        source = entry.get("source")
+        if source:
+            text.append_text(Text.assemble("\n\nSource: ", fmt.literal(source, wrap=True)))
+        return text
+    return fmt.literal(entry, wrap=True)
+
 
 def _normal(name: str) -> str:
     return re.sub(r"[^a-z0-9]+", "_", name.lower()).strip("_")
@@ -63,13 +122,13 @@ class HowView(SnapshotView):
             topics.clear_options()
             topics.add_options(
                 [Option(Text("about this run", self.paint("title")), id=ABOUT)]
-                + [Option(fmt.literal(key), id=key) for key in keys]
+                + [Option(fmt.literal(title(key)), id=key) for key in keys]
             )
             self._highlight()
         self.query_one("#how-title", Static).update(
             Text.assemble(
                 (f"{len(keys)} figures", self.paint("title")),
-                " · ↑↓ choose · ? or esc: back · definitions come with the snapshot",
+                " · ↑↓ choose · ? or esc: back",
             )
         )
         self._explain()
@@ -95,8 +154,8 @@ class HowView(SnapshotView):
         if snapshot is None:
             return
         if self._topic in snapshot["how"]:
-            definition = fmt.literal(snapshot["how"][self._topic], wrap=True)
-            text = Text.assemble(fmt.literal(self._topic, self.paint("title")), "\n\n", definition)
+            text = Text.assemble(fmt.literal(title(self._topic), self.paint("title")), "\n\n",
+                                 definition(snapshot["how"][self._topic]))
         else:
             text = about(snapshot)
         self.query_one("#how-text", Static).update(text)

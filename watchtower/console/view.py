@@ -39,6 +39,7 @@ class SnapshotView(Vertical):
     def __init__(self, *, id: str) -> None:
         super().__init__(id=id)
         self.detail = Text()
+        self.plain = False  # low-bandwidth mode: leave out decoration (bars) that costs a redraw per change
 
     def watch_snapshot(self, snapshot: Snapshot | None) -> None:
         """Redraw when a new snapshot is handed over."""
