@@ -133,11 +133,11 @@ def test_far_below_peers_on_both_sides(build_window, build_transfers, ratio: flo
     (ring(3), True),  # a class of three: the rule is on
 ])
 def test_far_below_rule_needs_a_class_of_three(build_window, build_transfers, pairs, slow: bool) -> None:
-    # The last link runs at a fifth of the others. Its z-score alone never flags it: in a class of two the
-    # scores are ±0.6745 (each one MAD from the median); in a class of three MAD = 0, so the scale is
-    # 1.253314 × mean |dev| = 1.253314 × log(5) / 3 and the score is −3 / 1.253314 = −2.39 (Iglewicz &
-    # Hoaglin, 1993), by hand.
-    betas = {pair: C for pair in pairs[:-1]} | {pairs[-1]: C / 5}
+    # The last link runs at a tenth of the others (in a class of two, under a third of the median 0.55 C
+    # too). Its z-score alone never flags it: in a class of two the scores are ±0.6745 (each one MAD from
+    # the median); in a class of three MAD = 0, so the scale is 1.253314 × mean |dev| = 1.253314 × log(10)
+    # / 3 and the score is −3 / 1.253314 = −2.39 (Iglewicz & Hoaglin, 1993), by hand.
+    betas = {pair: C for pair in pairs[:-1]} | {pairs[-1]: C / 10}
     n_nodes = max(max(p) for p in pairs) + 1
     links = links_by_pair(analysis_to_json(analyse(
         network_window(build_window, build_transfers, betas, n_nodes), None, Cluster())))
@@ -224,10 +224,10 @@ def test_a_way_out_over_three_times_faster_than_a_slow_way_in_is_shadowed(build_
 ])
 def test_port_far_below_rule_needs_three_ports(build_window, build_transfers, groups: dict, slow: bool) -> None:
     # A port under a third of its peers' median capacity (same direction, same node group) is slow (common
-    # practice, no source). Four nodes, every pair at 1 GB/s but n1's way out at 0.2 GB/s. Its z-score
-    # alone does not flag it: against one peer it is −0.6745; against two, MAD = 0 and the score is
-    # −3 / 1.253314 = −2.39 (Iglewicz & Hoaglin, 1993), by hand.
-    betas = {pair: (0.2 * C if pair[0] == 1 else C) for pair in mesh(4)}
+    # practice, no source). Four nodes, every pair at 1 GB/s but n1's way out at 0.1 GB/s (under a third
+    # of the median of two, 0.55 GB/s, too). Its z-score alone does not flag it: against one peer it is
+    # −0.6745; against two, MAD = 0 and the score is −3 / 1.253314 = −2.39 (Iglewicz & Hoaglin, 1993).
+    betas = {pair: (0.1 * C if pair[0] == 1 else C) for pair in mesh(4)}
     ports, _ = ports_and_links(build_window, build_transfers, betas, 4, Cluster(node_group=groups))
     assert ports["n1 out"]["score"] == pytest.approx(-Z_MAD if not slow else -3 / 1.253314, rel=1e-6)
     assert ports["n1 out"]["slow"] is slow
