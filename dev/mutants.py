@@ -6,7 +6,7 @@ analysis tests run there (``pytest -x``, so a killed mutant stops at its first f
 is put back. The table at the end says which mutants some test killed and which survived.
 
     python dev/mutants.py            # all mutants
-    python dev/mutants.py -k LIMITS  # only mutants whose name contains LIMITS
+    python dev/mutants.py -k LIMITS -k SHADOW  # only mutants whose name contains one of these
 
 Exit status 1 when a mutant survived (or the unmutated copy fails its tests). It takes a few minutes and
 loads both cores: on a shared machine run it under the shared lock (see DEVELOPERS.md).
@@ -115,9 +115,9 @@ def run_tests(root: Path) -> tuple[bool, str]:
 
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("-k", default="", help="only mutants whose name contains this")
+    parser.add_argument("-k", action="append", default=[], help="only mutants whose name contains this (repeatable)")
     args = parser.parse_args()
-    mutants = [m for m in AUDIT + scaled_mutants() if args.k in m.name]
+    mutants = [m for m in AUDIT + scaled_mutants() if not args.k or any(k in m.name for k in args.k)]
     with tempfile.TemporaryDirectory(prefix="wt-mutants-") as tmp:
         root = Path(tmp) / "repo"
         shutil.copytree(REPO, root, ignore=shutil.ignore_patterns(".venv", ".git", "__pycache__", "*.egg-info",

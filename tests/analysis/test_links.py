@@ -15,7 +15,6 @@ import numpy as np
 import pytest
 
 from watchtower.analysis import Transfers, Window, analyse, fit_hockney
-from watchtower.analysis.links import MAX_FIT_TRANSFERS
 from watchtower.cluster import Cluster
 
 ALPHA, BETA = 20e-6, 5e9
@@ -156,9 +155,10 @@ def test_link_model_uses_the_quantile_its_waits_call_for(rng: np.random.Generato
 
 
 def test_link_model_fits_the_newest_whole_steps_under_the_cap(rng: np.random.Generator) -> None:
-    # Five steps of a fifth of the cap plus one transfers each, every step at its own β: the fit must use
-    # the newest four steps (the most whole steps under the cap), not three, not five.
-    per_step = MAX_FIT_TRANSFERS // 4 - 1
+    # The cap is 200,000 transfers (see links.bandwidth_Bps in HOW; no source). Five steps of 49,999
+    # transfers each, every step at its own β: the fit must use the newest four steps (199,996 transfers,
+    # the most whole steps under the cap), not three, not five.
+    per_step = 49_999
     steps = np.repeat(np.arange(5), per_step)
     n = np.exp(rng.uniform(np.log(1e4), np.log(1e7), len(steps))).round()
     t = ALPHA + n / (BETA * (1.0 + 0.15 * steps))
