@@ -150,13 +150,24 @@ def test_alert_names_the_port_all_its_links_share(rng: np.random.Generator) -> N
 def test_ports_json_is_plain(rng: np.random.Generator) -> None:
     out = shaped("out", rng, steps=8)
     json.dumps(out, allow_nan=False)
-    assert len(out["ports"]) == 2 * N
+    # Every node's way out, then its way in; each carried its two ring links at 1 GB/s but n2's way out.
+    order = [(f"n{i}", d) for i in range(N) for d in ("out", "in")]
+    assert [(p["node"], p["direction"]) for p in out["ports"]] == order
     for p in out["ports"]:
-        assert set(p) >= {"node", "direction", "capacity_Bps", "slow", "score", "explains", "lower_bound",
-                          "nominal_Bps", "nic_Bps", "nic_disagrees"}
-        assert p["direction"] in ("out", "in")
-    assert all("port" in lk and "unexplained" in lk for lk in out["links"])
-    assert {"ports.capacity_Bps", "ports.slow", "links.port", "links.concurrency"} <= set(out["how"])
+        culprit = (p["node"], p["direction"]) == ("n2", "out")
+        assert p["links"] == 2 and p["nominal_Bps"] == 1.25e9 and p["nic_Bps"] is None and not p["nic_disagrees"]
+        assert p["capacity_Bps"] == pytest.approx(C / 5 if culprit else C, rel=0.05)
+        assert p["slow"] is culprit and p["lower_bound"] is not culprit and p["shadowed_by"] is None
+        # 0.2 GB/s is far below its peers and below half the 1.25 GB/s nominal rate.
+        assert p["reason"] == ("outlier, below-nominal" if culprit else "")
+        assert p["explains"] == ([["n2", "n1"], ["n2", "n3"]] if culprit else [])
+    assert {(lk["src"], lk["dst"]): lk["port"] for lk in out["links"] if lk["port"]} == {
+        ("n2", "n1"): "n2 out", ("n2", "n3"): "n2 out"}
+    assert not any(lk["unexplained"] for lk in out["links"])
+    how = out["how"]
+    assert "Iglewicz & Hoaglin (1993)" in how["ports.slow"]["source"]
+    assert "Bertsekas & Gallager" in how["links.concurrency"]["source"]
+    assert "75 %" in how["links.port"]["definition"] and "no source" in how["links.port"]["source"]
 
 
 def test_a_way_out_held_back_by_a_far_slower_way_in_is_not_a_second_culprit(rng: np.random.Generator) -> None:

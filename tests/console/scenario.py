@@ -1,7 +1,9 @@
 """A deterministic job snapshot for the console tests, shaped exactly as docs/snapshot.md says.
 
-Six nodes of four ranks, twelve layers (three comm-bound), one slow link node-c→node-d explained by
-node-c's outgoing port, one straggler rank, an alert on that link and one on step time, some lost frames.
+Six nodes of four ranks, twelve layers (three comm-bound, one just under the threshold), one slow link
+node-c→node-d explained by node-c's outgoing port, one straggler rank, an alert on that link and one on step
+time, some lost frames. The layers' comm fractions and comm-bound verdicts come from the analysis itself
+(``analyse``), so a wrong threshold there shows on screen.
 """
 
 from __future__ import annotations
@@ -9,7 +11,11 @@ from __future__ import annotations
 import copy
 from typing import Any
 
+import numpy as np
+
+from watchtower.analysis import Window, analyse, analysis_to_json
 from watchtower.analysis.summary import HOW
+from watchtower.cluster import Cluster
 
 NODES = ["node-a", "node-b", "node-c", "node-d", "node-e", "node-f"]
 RANKS_PER_NODE = 4
@@ -25,7 +31,7 @@ LAYERS = [
     ("block3.attn", 2.40, 0.60),
     ("block3.mlp", 3.10, 0.45),
     ("norm", 0.20, 0.02),
-    ("head", 1.10, 0.30),
+    ("head", 1.10, 0.85),  # comm fraction 0.44: near the 0.5 threshold, not above it
     ("grad.allreduce", 0.30, 4.20),
 ]
 NOMINAL = 12.5e9
@@ -33,12 +39,21 @@ STEPS = 200  # steps in the window
 SLOW = ("node-c", "node-d")
 
 
+def _analysed_layers(exchange: list[float]) -> list[dict[str, Any]]:
+    """The layers as ``analyse`` sees them: one rank, one step holding the window's sums."""
+    compute = np.array([[[c for _, c, _ in LAYERS]]])
+    window = Window(tuple(name for name, _, _ in LAYERS), ("node-a",), np.array([0], np.int32),
+                    np.array([0], np.int32), np.array([0]), compute, np.array([[exchange]]),
+                    compute.sum(axis=2) + sum(exchange))
+    return analysis_to_json(analyse(window, None, Cluster()))["layers"]
+
+
 def _layers(step: int) -> list[dict[str, Any]]:
     drift = (step % 100) / 1000.0
+    analysed = _analysed_layers([round(exchange + drift, 6) for _, _, exchange in LAYERS])
     layers = []
     for index, (name, compute, exchange) in enumerate(LAYERS):
         exchange = round(exchange + drift, 6)
-        fraction = exchange / (compute + exchange)
         worst = []
         for k in range(3):
             rank = (index * 5 + k * 7) % 24
@@ -60,9 +75,9 @@ def _layers(step: int) -> list[dict[str, Any]]:
                 "name": name,
                 "compute_s": compute,
                 "exchange_s": exchange,
-                "comm_fraction": fraction,
+                "comm_fraction": analysed[index]["comm_fraction"],
                 "comm_fraction_worst": worst[0]["comm_fraction"],
-                "comm_bound": fraction > 0.5,
+                "comm_bound": analysed[index]["comm_bound"],
                 "per_step": {"compute_s": compute / STEPS, "exchange_s": exchange / STEPS,
                              "compute_worst_s": compute * 1.2 / STEPS, "exchange_worst_s": exchange * 1.6 / STEPS},
                 "worst_ranks": worst,
