@@ -218,6 +218,7 @@ class Probe:
         self.offset_ns: int | None = None
         self.sent_frames: list[list[bytes]] = []
         self._layers: dict[str, int] = {}
+        self._carries: dict[int, tuple[int, ...]] = {}
         self._schema_id = 0
         self._schema_sent_at = -SCHEMA_EVERY
         self._schema_dirty = True
@@ -293,6 +294,16 @@ class Probe:
     def layers(self) -> tuple[str, ...]:
         return tuple(self._layers)
 
+    def carries(self, layer: str, sources: Sequence[str]) -> None:
+        """Declare that ``layer`` (e.g. a DDP bucket) carries the gradients of the layers ``sources``, so
+        the head can say whose gradients arrive late. Sent with the schema (re-announced when it changes)."""
+        index = self.layer(layer)
+        carried = tuple(sorted({self.layer(name) for name in sources} - {index}))  # in model order
+        if self._carries.get(index) != carried:
+            self._carries[index] = carried
+            self._schema_id += 1
+            self._schema_dirty = True
+
     # ------------------------------------------------------------------------------------ timing
     def compute(self, layer: str) -> _Region:
         """``with probe.compute("attn.3"):`` times useful work of that layer."""
@@ -342,6 +353,11 @@ class Probe:
             raise ValueError(f"peer {peer} is outside a world of {self.world}")
 
     # ------------------------------------------------------------------------------------ device streams
+    @property
+    def device_timing(self) -> bool:
+        """Whether regions are timed by device markers (``device=``) rather than the host clock."""
+        return self._pool is not None
+
     def _device_pool(self) -> MarkerPool:
         if self._pool is None:
             raise RuntimeError("device markers need a probe made with device=...; on the host clock use "
@@ -527,7 +543,7 @@ class Probe:
     def _send_schema(self) -> None:
         frames = wire.encode_schema(self.sender, self.seq, self.wall_clock(), schema_id=self._schema_id,
                                     rank=self.rank, world=self.world, node=self.node, layers=self.layers,
-                                    job=self.job)
+                                    job=self.job, carries=sorted(self._carries.items()))
         self._schema_sent_at = self.seq
         if self._send(frames):
             self._schema_dirty = False

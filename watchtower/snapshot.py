@@ -14,6 +14,7 @@ import numpy as np
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.summary import analyse, analysis_to_json
 from watchtower.analysis.summary import json_float as _f
+from watchtower.buckets import carried_label
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
 from watchtower.store import NodeInfo
@@ -62,6 +63,8 @@ def build_snapshot(
     node_names = window.nodes
     rank_node = dict(zip(window.ranks.tolist(), window.rank_node.tolist(), strict=True))
     for i, layer in enumerate(snapshot["layers"]):
+        carried = store.carries.get(layer["name"])
+        layer["carries"] = carried_label(carried) if carried else None
         layer["worst_ranks"] = [
             {"rank": int(r), "node": node_names[rank_node[int(r)]], "compute_s": _f(c), "exchange_s": _f(e),
              "comm_fraction": _f(f)}
