@@ -46,12 +46,13 @@ class MarkerPool:
     """Markers reused across steps: ``take`` records one (creating it only if none is free), ``give``
     returns it once read. Tolerates ``take`` from another thread (a collective's callback)."""
 
-    __slots__ = ("_free", "backend", "created")
+    __slots__ = ("_free", "_record", "backend", "created")
 
     def __init__(self, backend: Markers) -> None:
         self.backend = backend
         self.created = 0
         self._free: list[Marker] = []
+        self._record = backend.record  # bound once: ``take`` runs twice per region
 
     def take(self, stream: Stream = None) -> Marker:
         try:
@@ -59,7 +60,7 @@ class MarkerPool:
         except IndexError:
             marker = self.backend.create()
             self.created += 1
-        self.backend.record(marker, stream)
+        self._record(marker, stream)
         return marker
 
     def give(self, markers: Sequence[Marker]) -> None:

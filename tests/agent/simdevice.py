@@ -40,9 +40,11 @@ class SimDevice:
         self._queues: dict[str, deque[tuple]] = {name: deque() for name in streams}
         self._run = threading.Lock()  # held by the worker while it executes an op; pause() takes it
         self._paused = False
+        self._running = threading.Event()  # cleared while paused: the worker sleeps on it
+        self._running.set()
         self._stop = False
+        self._idle = False  # the worker found nothing to run and sleeps until woken
         self._wake = threading.Event()
-        self.host_records = 0
         self._worker = threading.Thread(target=self._loop, name="sim-device", daemon=True)
         self._worker.start()
 
@@ -65,7 +67,8 @@ class SimDevice:
 
     def _enqueue(self, stream: str | None, op: tuple) -> None:
         self._queues[stream or self.current].append(op)  # deque.append is atomic: no host lock
-        self._wake.set()
+        if self._idle:  # wake the worker only when it sleeps: setting an Event costs the host a lock
+            self._wake.set()
 
     # ---------------------------------------------------------------- the Markers protocol
     def create(self) -> SimMarker:
@@ -74,8 +77,9 @@ class SimDevice:
     def record(self, marker: SimMarker, stream: str | None = None) -> None:
         marker.done = False
         marker.generation += 1
-        self.host_records += 1
-        self._enqueue(stream, ("record", marker, marker.generation))
+        self._queues[stream or self.current].append(("record", marker, marker.generation))  # as _enqueue, inline
+        if self._idle:
+            self._wake.set()
 
     def query(self, marker: SimMarker) -> bool:
         return marker.done
@@ -89,11 +93,12 @@ class SimDevice:
     def pause(self) -> None:
         with self._run:
             self._paused = True
+            self._running.clear()
 
     def resume(self) -> None:
         with self._run:
             self._paused = False
-        self._wake.set()
+            self._running.set()
 
     def idle(self, deadline_s: float = 10.0) -> None:
         """Poll until every stream has run dry (a test helper; the probe never does this)."""
@@ -107,17 +112,25 @@ class SimDevice:
 
     def close(self) -> None:
         self._stop = True
+        self._running.set()
         self._wake.set()
         self._worker.join(timeout=5)
 
     # ---------------------------------------------------------------- the device
     def _loop(self) -> None:
         while not self._stop:
+            self._running.wait()
             with self._run:
                 ran = not self._paused and self._step()
+            if ran:
+                continue
+            self._wake.clear()
+            self._idle = True
+            with self._run:  # again after saying idle: work enqueued before that would wake no one
+                ran = not self._paused and self._step()
             if not ran:
-                self._wake.wait(0.005)  # woken by the next enqueue; the timeout only covers a lost wake-up
-                self._wake.clear()
+                self._wake.wait(0.05)  # nothing can run until the host enqueues (which wakes us)
+            self._idle = False
 
     def _step(self) -> bool:
         """Execute the first runnable op, streams in a fixed order; False if none can run."""
