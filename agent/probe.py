@@ -73,13 +73,13 @@ class _Region:
 class _DeviceRegion:
     """``_Region`` with device markers: records a start and an end marker; the step reads them later."""
 
-    __slots__ = ("_key", "_marks", "_probe", "_start", "_take")
+    __slots__ = ("_marks", "_probe", "_row", "_slot", "_start", "_take")
 
     def __init__(self, probe: Probe, row: int, slot: int) -> None:
         self._probe = probe
         self._take = probe._pool.take  # type: ignore[union-attr]
         self._marks = probe._regions
-        self._key = (row, slot)
+        self._row, self._slot = row, slot
         self._start: Marker = None
 
     def __enter__(self) -> _DeviceRegion:
@@ -89,7 +89,7 @@ class _DeviceRegion:
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None:
         end = self._probe.last_mark = self._take()
-        self._marks.append((*self._key, self._start, end))
+        self._marks.append((self._row, self._slot, self._start, end))
 
 
 class _DeviceExchange:

@@ -67,7 +67,7 @@ class SimDevice:
 
     def _enqueue(self, stream: str | None, op: tuple) -> None:
         self._queues[stream or self.current].append(op)  # deque.append is atomic: no host lock
-        if self._idle:  # wake the worker only when it sleeps: setting an Event costs the host a lock
+        if self._idle and not self._paused:  # wake only a sleeping worker that may run: waking costs the host
             self._wake.set()
 
     # ---------------------------------------------------------------- the Markers protocol
@@ -78,7 +78,7 @@ class SimDevice:
         marker.done = False
         marker.generation += 1
         self._queues[stream or self.current].append(("record", marker, marker.generation))  # as _enqueue, inline
-        if self._idle:
+        if self._idle and not self._paused:
             self._wake.set()
 
     def query(self, marker: SimMarker) -> bool:
@@ -99,6 +99,7 @@ class SimDevice:
         with self._run:
             self._paused = False
             self._running.set()
+        self._wake.set()
 
     def idle(self, deadline_s: float = 10.0) -> None:
         """Poll until every stream has run dry (a test helper; the probe never does this)."""

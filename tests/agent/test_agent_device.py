@@ -7,7 +7,8 @@ without the host ever waiting, and every step must be published exactly once and
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+import threading
+from collections.abc import Callable, Iterator
 
 import pytest
 from simdevice import COMM, SimDevice
@@ -41,6 +42,17 @@ def _kernel_ns(step: int, layer: int) -> int:
     return (layer + 1) * MS + step * 1_337 + 17
 
 
+def _returns_while_device_is_held(call: Callable[[], bool]) -> bool:
+    """Run ``call`` on another thread and insist it returns within a deadline: a probe that waited for the
+    held device would never return (the test fails instead of hanging)."""
+    result: list[bool] = []
+    thread = threading.Thread(target=lambda: result.append(call()), daemon=True)
+    thread.start()
+    thread.join(timeout=10.0)
+    assert not thread.is_alive(), "end_step waited for the device"
+    return result[0]
+
+
 def _run_step(probe: Probe, device: SimDevice, step: int, *, gap_ns: int = 0) -> None:
     for i, name in enumerate(LAYERS):
         with probe.compute(name):
@@ -53,7 +65,7 @@ def test_layers_get_device_durations_published_later_and_never_while_the_device_
     device.pause()  # the device is busy: the host runs three steps ahead
     for step in range(3):
         _run_step(probe, device, step, gap_ns=500)
-        assert probe.end_step()  # returns at once, publishing nothing yet
+        assert _returns_while_device_is_held(probe.end_step)  # publishing nothing yet
     assert _steps(probe) == [] and probe.pending_steps == 3
     device.resume()
     device.idle()
