@@ -49,6 +49,7 @@ Verified here only against a simulated device and a fake ``torch.cuda`` (tests/t
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable, Iterator
 from contextlib import AbstractContextManager
 from typing import Any
@@ -272,6 +273,7 @@ class TimedWork:
                  call: Callable[[], dist.Work]) -> None:
         self.probe, self.layer, self.op, self.peer, self.group, self.nbytes = probe, layer, op, peer, group, nbytes
         self._transfer: Transfer | None = None
+        self._ending = threading.Lock()  # the callback (maybe on a backend thread) and wait() race to mark the end
         self._start = 0
         if probe.device_timing:
             self._transfer = probe.transfer(layer, op=op, nbytes=nbytes, peer=peer, group=group)
@@ -282,8 +284,12 @@ class TimedWork:
             self.work = call()
 
     def _done(self, fut: torch.futures.Future[Any]) -> None:
-        if self._transfer is not None and self._transfer.end is None:
-            self.probe.finish(self._transfer)
+        self._finish_once()
+
+    def _finish_once(self) -> None:
+        with self._ending:
+            if self._transfer is not None and self._transfer.end is None:
+                self.probe.finish(self._transfer)
 
     def wait(self) -> None:
         if self._transfer is None:
@@ -295,8 +301,7 @@ class TimedWork:
             return
         since = self.probe.mark()
         self.work.wait()  # makes the current stream wait for the work; the host does not wait for the GPU
-        if self._transfer.end is None:  # the callback has not run yet: the stream now waits, so mark here
-            self.probe.finish(self._transfer)
+        self._finish_once()  # if the callback has not run yet: the stream now waits for the work, so mark here
         self.probe.wait_window(since, [self._transfer])
 
 

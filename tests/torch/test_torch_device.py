@@ -129,3 +129,16 @@ def test_async_collective_on_the_host_clock_charges_only_the_wait(group: None) -
     (start, end), exposed = step.exchanges[[wire.X_START, wire.X_END], 0].tolist(), step.layer_ns[1][0]
     assert step.exchanges[wire.X_NBYTES, 0] == 1024 and step.exchanges[wire.X_OP, 0] == wire.Op.ALLREDUCE
     assert 0 <= exposed <= end - start  # the wait is part of the transfer, never more
+
+
+def test_async_collective_with_device_timing_is_recorded_once(cuda: FakeCuda, group: None) -> None:
+    probe = Probe(0, 1, "host0", None, device=CudaMarkers(cuda))
+    timed = TimedDist(probe)
+    for _ in range(20):  # the completion callback and wait() race to mark the end: once, whoever wins
+        timed.all_reduce_async(torch.ones(64), layer="halo").wait()
+        probe.end_step()
+    cuda.device.idle()
+    assert probe.drain(deadline_s=5.0) == 0
+    steps = published(probe)
+    assert [s.exchanges.shape[1] for s in steps] == [1] * 20
+    assert all(s.exchanges[wire.X_NBYTES, 0] == 256 and s.layer_ns[1][0] == 0 for s in steps)  # no device wait
