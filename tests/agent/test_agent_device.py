@@ -229,3 +229,24 @@ def test_split_exposed_matches_a_worked_example() -> None:
     # by hand: wait from 100 to 160; A ends at 90 (hidden), B runs 80-130, C runs 120-170 (capped at 160)
     assert split_exposed(100, 160, [(50, 90), (80, 130), (120, 170)]) == [0, 30, 30]
     assert union_ns([(0, 4), (3, 6), (10, 11)]) == 7
+
+
+def test_figures_do_not_depend_on_when_the_device_ran() -> None:
+    """The same work, once with the device held until the end and once running alongside: the published
+    figures are identical, only the moment of publication differs."""
+    tables = []
+    for hold in (True, False):
+        device = SimDevice()
+        probe = _probe(device)
+        if hold:
+            device.pause()
+        for step in range(4):
+            _exchange_step(probe, device, [3 * MS + step, 2 * MS, 4 * MS], [5 * MS, 1 * MS, 7 * MS])
+            probe.end_step()
+        device.resume()
+        device.idle()
+        assert probe.drain(deadline_s=5.0) == 0
+        tables.append([(s.step, s.duration_ns, s.layer_ns.tolist(), s.exchanges.tolist()) for s in _steps(probe)])
+        device.close()
+    assert tables[0] == tables[1]
+    assert [row[0] for row in tables[0]] == [0, 1, 2, 3]
