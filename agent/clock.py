@@ -1,8 +1,9 @@
 """Clocks a probe can time with. Any zero-argument callable returning integer nanoseconds will do.
 
 The default is ``time.perf_counter_ns``: monotonic and cheap (about 100 ns for a pair of calls on the
-machines we measured, see DESIGN §6). A GPU event clock can be plugged in by passing a callable that
-synchronises and reads an event; only differences between readings in one process are ever used.
+machines we measured, see DESIGN §6). Only differences between readings in one process are ever used. On a
+GPU a host clock times launches, not work: time with device markers instead (``Probe(device=...)``,
+``agent/device.py``), not with a clock that synchronises.
 """
 
 from __future__ import annotations

@@ -11,12 +11,18 @@ With ``spool=PATH`` the probe also appends every frame it numbers, sent or dropp
 (``agent/records.py``; one unbuffered write per frame). Spooling only the drops would miss frames that
 ZeroMQ accepted but that died with a killed collector or node daemon; spooling all makes
 ``watchtower merge`` of the head's recording and the spools complete, at the price of one write per frame.
+
+With ``device=`` (a ``agent.device.Markers`` backend, e.g. CUDA events) regions are timed by markers on the
+device's streams instead of the host clock, and a step is published once the device has passed all its
+markers: at a later ``end_step``, one or two steps behind on a busy device (see ``agent/device.py``).
 """
 
 from __future__ import annotations
 
 import secrets
 import time
+from collections import deque
+from collections.abc import Sequence
 from pathlib import Path
 from types import TracebackType
 
@@ -25,6 +31,19 @@ import zmq
 
 from agent import wire
 from agent.clock import Clock, default_clock
+from agent.device import (
+    COMPUTE,
+    EXCHANGE,
+    Marker,
+    MarkerPool,
+    Markers,
+    PendingStep,
+    Stream,
+    Transfer,
+    Window,
+    split_exposed,
+    union_ns,
+)
 from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
@@ -49,6 +68,57 @@ class _Region:
     def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
                  tb: TracebackType | None) -> None:
         self._totals[self._slot] += self._clock() - self._start
+
+
+class _DeviceRegion:
+    """``_Region`` with device markers: records a start and an end marker; the step reads them later."""
+
+    __slots__ = ("_marks", "_probe", "_row", "_slot", "_start", "_take")
+
+    def __init__(self, probe: Probe, row: int, slot: int) -> None:
+        self._probe = probe
+        self._take = probe._pool.take  # type: ignore[union-attr]
+        self._marks = probe._regions
+        self._row, self._slot = row, slot
+        self._start: Marker = None
+
+    def __enter__(self) -> _DeviceRegion:
+        self._start = self._take()
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        end = self._probe.last_mark = self._take()
+        self._marks.append((self._row, self._slot, self._start, end))
+
+
+class _DeviceExchange:
+    """An exchange the compute stream is blocked in, timed by markers on that stream (see ``Exchange``).
+    The peer's readiness is a host-clock figure and cannot be set here: the record's wait is unknown."""
+
+    __slots__ = ("_probe", "stopped", "transfer")
+
+    def __init__(self, probe: Probe, layer: int, op: wire.Op, peer: int, group: int, nbytes: int) -> None:
+        self._probe = probe
+        self.transfer = Transfer(layer, int(op), peer, group, nbytes, probe._pool.take())  # type: ignore[union-attr]
+        self.stopped = False
+
+    def stop(self, nbytes: int | None = None) -> None:
+        if self.stopped:
+            raise RuntimeError("exchange stopped twice")
+        self.stopped = True
+        self.transfer.end = self._probe.last_mark = self._probe._pool.take()  # type: ignore[union-attr]
+        if nbytes is not None:
+            self.transfer.nbytes = nbytes
+        self._probe._blocking.append(self.transfer)
+
+    def __enter__(self) -> _DeviceExchange:
+        return self
+
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
+        if not self.stopped:
+            self.stop()
 
 
 class Exchange:
@@ -132,6 +202,7 @@ class Probe:
         curve_keys: tuple[bytes, bytes, bytes] | None = None,
         spool: str | Path | None = None,
         sender: int | None = None,
+        device: Markers | None = None,
     ) -> None:
         if not 0 <= rank < world:
             raise ValueError(f"rank {rank} is outside a world of {world}")
@@ -147,6 +218,7 @@ class Probe:
         self.offset_ns: int | None = None
         self.sent_frames: list[list[bytes]] = []
         self._layers: dict[str, int] = {}
+        self._carries: dict[int, tuple[int, ...]] = {}
         self._schema_id = 0
         self._schema_sent_at = -SCHEMA_EVERY
         self._schema_dirty = True
@@ -154,8 +226,18 @@ class Probe:
         self._exchange: list[int] = []
         self._in_flight: list[int] = []  # per layer: exchanges started and not yet stopped
         self._busy_since: list[int] = []  # per layer: when the current run of in-flight exchanges began
-        self._compute_regions: dict[str, _Region] = {}
-        self._blocked_regions: dict[str, _Region] = {}
+        self._compute_regions: dict[str, _Region | _DeviceRegion] = {}
+        self._blocked_regions: dict[str, _Region | _DeviceRegion] = {}
+        # device timing (``device=``): this step's markers, and ended steps the device has not finished
+        self._pool = None if device is None else MarkerPool(device)
+        self._regions: list[tuple[int, int, Marker, Marker]] = []
+        self._blocking: list[Transfer] = []
+        self._transfers: list[Transfer] = []
+        self._windows: list[Window] = []
+        self._loose: list[Marker] = []
+        self._pending: deque[PendingStep] = deque()
+        self._origin: Marker = None if self._pool is None else self._pool.take()
+        self.last_mark: Marker = None  # device: the end marker of the latest region or exchange
         self._records: list[tuple[int, int, int, int, int, int, int, int]] = []
         self._open: dict[str, int] = {}
         self._step_start = clock()
@@ -198,8 +280,12 @@ class Probe:
             self._exchange.append(0)
             self._in_flight.append(0)
             self._busy_since.append(0)
-            self._compute_regions[name] = _Region(self.clock, self._compute, index)
-            self._blocked_regions[name] = _Region(self.clock, self._exchange, index)
+            if self._pool is None:
+                self._compute_regions[name] = _Region(self.clock, self._compute, index)
+                self._blocked_regions[name] = _Region(self.clock, self._exchange, index)
+            else:
+                self._compute_regions[name] = _DeviceRegion(self, COMPUTE, index)
+                self._blocked_regions[name] = _DeviceRegion(self, EXCHANGE, index)
             self._schema_id += 1
             self._schema_dirty = True
         return index
@@ -207,6 +293,16 @@ class Probe:
     @property
     def layers(self) -> tuple[str, ...]:
         return tuple(self._layers)
+
+    def carries(self, layer: str, sources: Sequence[str]) -> None:
+        """Declare that ``layer`` (e.g. a DDP bucket) carries the gradients of the layers ``sources``, so
+        the head can say whose gradients arrive late. Sent with the schema (re-announced when it changes)."""
+        index = self.layer(layer)
+        carried = tuple(sorted({self.layer(name) for name in sources} - {index}))  # in model order
+        if self._carries.get(index) != carried:
+            self._carries[index] = carried
+            self._schema_id += 1
+            self._schema_dirty = True
 
     # ------------------------------------------------------------------------------------ timing
     def compute(self, layer: str) -> _Region:
@@ -228,24 +324,78 @@ class Probe:
     def start_compute(self, layer: str) -> None:
         """Explicit form of ``compute`` for code that cannot use ``with``."""
         self.layer(layer)
-        self._open[layer] = self.clock()
+        self._open[layer] = self.clock() if self._pool is None else self._pool.take()
 
     def stop_compute(self, layer: str) -> None:
         start = self._open.pop(layer, None)
         if start is None:
             raise RuntimeError(f"stop_compute({layer!r}) without start_compute")
-        self._compute[self._layers[layer]] += self.clock() - start
+        if self._pool is None:
+            self._compute[self._layers[layer]] += self.clock() - start
+        else:
+            self.last_mark = end = self._pool.take()
+            self._regions.append((COMPUTE, self._layers[layer], start, end))
 
     def exchange(self, layer: str, *, peer: int = wire.NO_PEER, nbytes: int = 0, op: wire.Op = wire.Op.RECV,
-                 group: int = 0) -> Exchange:
+                 group: int = 0) -> Exchange | _DeviceExchange:
         """Start timing one exchange of ``layer``: a point-to-point ``op`` (SEND/RECV) with ``peer``, or a
         collective (``op`` such as ALLREDUCE, ``group`` = its group size, ``peer`` left at -1)."""
+        self._check_peer(op, peer)
+        if self._pool is not None:
+            return _DeviceExchange(self, self.layer(layer), op, peer, group, nbytes)
+        return Exchange(self, self.layer(layer), op, peer, group, nbytes)
+
+    def _check_peer(self, op: wire.Op, peer: int) -> None:
         if op in wire.COLLECTIVE_OPS:
             if peer != wire.NO_PEER:
                 raise ValueError("a collective has no single peer")
         elif not 0 <= peer < self.world:
             raise ValueError(f"peer {peer} is outside a world of {self.world}")
-        return Exchange(self, self.layer(layer), op, peer, group, nbytes)
+
+    # ------------------------------------------------------------------------------------ device streams
+    @property
+    def device_timing(self) -> bool:
+        """Whether regions are timed by device markers (``device=``) rather than the host clock."""
+        return self._pool is not None
+
+    def _device_pool(self) -> MarkerPool:
+        if self._pool is None:
+            raise RuntimeError("device markers need a probe made with device=...; on the host clock use "
+                               "exchange() or record_transfer()")
+        return self._pool
+
+    def transfer(self, layer: str, *, op: wire.Op, nbytes: int, peer: int = wire.NO_PEER, group: int = 0,
+                 stream: Stream = None) -> Transfer:
+        """Device timing: mark the start of a transfer on ``stream`` (a collective's own stream, or a
+        stream that waits for it); ``finish`` marks its end. Its time is recorded for the link models;
+        only the part a ``wait_window`` exposes is exchange time of ``layer``."""
+        pool = self._device_pool()
+        self._check_peer(op, peer)
+        return Transfer(self.layer(layer), int(op), peer, group, nbytes, pool.take(stream))
+
+    def finish(self, transfer: Transfer, stream: Stream = None) -> None:
+        """Mark the end of ``transfer`` on ``stream``. May be called from another thread (a collective's
+        completion callback); it belongs to the step during which it is called."""
+        transfer.end = self._device_pool().take(stream)
+        self._transfers.append(transfer)
+
+    def mark(self) -> Marker:
+        """Device timing: a marker on the current stream now, owned by this step (a ``wait_window`` start)."""
+        marker = self._device_pool().take()
+        self._loose.append(marker)
+        return marker
+
+    def wait_window(self, since: Marker, transfers: Sequence[Transfer]) -> None:
+        """The current stream resumes here after waiting for ``transfers`` (finished, in this step); it
+        stopped doing its own work at marker ``since`` (``last_mark`` after the last region, or ``mark()``).
+
+        The span is the exposed part of those transfers, split among them in order of completion
+        (``device.split_exposed``): a transfer that ended before ``since`` was hidden behind compute and
+        costs nothing."""
+        pool = self._device_pool()
+        if any(t.end is None for t in transfers):
+            raise RuntimeError("wait_window needs finished transfers")
+        self._windows.append(Window(since, pool.take(), list(transfers)))
 
     def _begin_exchange(self, layer: int, start: int) -> None:
         if self._in_flight[layer] == 0:
@@ -291,21 +441,14 @@ class Probe:
     def end_step(self) -> bool:
         """Close the current step, publish it without blocking, and start the next one.
 
-        Returns True when the frame was queued, False when it was dropped (queue full)."""
+        Returns True when the frame was queued, False when it was dropped (queue full). With a device
+        backend the step waits until the device has passed its markers: this publishes every earlier step
+        that is now complete, in order (none, one, or more), and returns False if any of them was dropped."""
+        if self._pool is not None:
+            return self._end_device_step()
         now = self.clock()
         layer_ns = np.array([self._compute, self._exchange], dtype=np.int64)
-        if self._records:
-            exchanges = np.array(self._records, dtype=np.int64).T
-        else:
-            exchanges = np.empty((len(wire.EXCHANGE_COLUMNS), 0), dtype=np.int64)
-        self._poll_clock()
-        if self._schema_dirty or self.seq - self._schema_sent_at >= SCHEMA_EVERY:
-            self._send_schema()
-        frames = wire.encode_step(
-            self.sender, self.seq, self._step_wall, step=self.step_index, duration_ns=now - self._step_start,
-            dropped_total=self.dropped, schema_id=self._schema_id, layer_ns=layer_ns, exchanges=exchanges,
-        )
-        ok = self._send(frames)
+        ok = self._publish(self.step_index, self._step_wall, now - self._step_start, layer_ns, self._records)
         self.step_index += 1
         for totals in (self._compute, self._exchange):
             totals[:] = [0] * len(totals)
@@ -314,10 +457,93 @@ class Probe:
         self._step_wall = self.wall_clock()
         return ok
 
+    def _end_device_step(self) -> bool:
+        last = self._pool.take()  # type: ignore[union-attr]
+        self._pending.append(PendingStep(self.step_index, self._step_wall, self._origin, last, self._regions.copy(),
+                                         self._blocking.copy(), self._transfers.copy(), self._windows.copy(),
+                                         self._loose.copy()))
+        for pending in (self._regions, self._blocking, self._transfers, self._windows, self._loose):
+            pending.clear()  # cleared, not replaced: the regions hold these very lists
+        self._origin = last
+        self.step_index += 1
+        self._step_wall = self.wall_clock()
+        return self.publish_ready()
+
+    def publish_ready(self) -> bool:
+        """Publish every ended step the device has finished, oldest first; never waits. False if a frame
+        was dropped."""
+        ok = True
+        backend = self._pool.backend  # type: ignore[union-attr]
+        while self._pending and self._pending[0].ready(backend):
+            ok = self._publish_device_step(self._pending.popleft()) and ok
+        return ok
+
+    def drain(self, deadline_s: float = 2.0) -> int:
+        """Publish pending steps as the device finishes them, polling their markers for up to
+        ``deadline_s`` (for the end of training, never inside it). Returns how many are still pending."""
+        end = time.monotonic() + deadline_s
+        while self._pending:
+            self.publish_ready()
+            if not self._pending or time.monotonic() >= end:
+                break
+            time.sleep(0.001)
+        return len(self._pending)
+
+    @property
+    def pending_steps(self) -> int:
+        """Ended steps not yet published because the device has not finished them (0 on the host clock)."""
+        return len(self._pending)
+
+    def _publish_device_step(self, pending: PendingStep) -> bool:
+        elapsed, origin = self._pool.backend.elapsed_ns, pending.origin  # type: ignore[union-attr]
+        layer_ns = np.zeros((2, len(self._layers)), dtype=np.int64)  # layers may have grown since: pad
+        for row, layer, start, end in pending.regions:
+            layer_ns[row, layer] += max(0, elapsed(start, end))
+        records: list[tuple[int, int, int, int, int, int, int, int]] = []
+        blocked: dict[int, list[tuple[int, int]]] = {}
+        for t in pending.blocking:
+            start = elapsed(origin, t.start)
+            end = max(start, elapsed(origin, t.end))
+            blocked.setdefault(t.layer, []).append((start, end))
+            records.append((t.layer, t.op, t.peer, t.group, t.nbytes, start, end, wire.UNKNOWN_WAIT))
+        for layer, intervals in blocked.items():
+            layer_ns[EXCHANGE, layer] += union_ns(intervals)
+        for w in pending.windows:
+            spans = [(elapsed(origin, t.start), elapsed(origin, t.end)) for t in w.transfers]
+            shares = split_exposed(elapsed(origin, w.start), elapsed(origin, w.end), spans)
+            for t, share in zip(w.transfers, shares, strict=True):
+                layer_ns[EXCHANGE, t.layer] += share
+        for t in pending.transfers:
+            start = elapsed(origin, t.start)
+            records.append((t.layer, t.op, t.peer, t.group, t.nbytes, start, max(start, elapsed(origin, t.end)),
+                            wire.UNKNOWN_WAIT))
+        ok = self._publish(pending.step, pending.wall_ns, max(0, elapsed(origin, pending.last)), layer_ns, records)
+        done = [origin, *pending.loose, *(w.end for w in pending.windows)]
+        for _, _, start, end in pending.regions:
+            done += (start, end)
+        for t in (*pending.blocking, *pending.transfers):
+            done += (t.start, t.end)
+        self._pool.give(done)  # type: ignore[union-attr]  # ``last`` stays: it is the next step's origin
+        return ok
+
+    def _publish(self, step: int, wall_ns: int, duration_ns: int, layer_ns: np.ndarray,
+                 records: list[tuple[int, int, int, int, int, int, int, int]]) -> bool:
+        if records:
+            exchanges = np.array(records, dtype=np.int64).T
+        else:
+            exchanges = np.empty((len(wire.EXCHANGE_COLUMNS), 0), dtype=np.int64)
+        self._poll_clock()
+        if self._schema_dirty or self.seq - self._schema_sent_at >= SCHEMA_EVERY:
+            self._send_schema()
+        return self._send(wire.encode_step(
+            self.sender, self.seq, wall_ns, step=step, duration_ns=duration_ns, dropped_total=self.dropped,
+            schema_id=self._schema_id, layer_ns=layer_ns, exchanges=exchanges,
+        ))
+
     def _send_schema(self) -> None:
         frames = wire.encode_schema(self.sender, self.seq, self.wall_clock(), schema_id=self._schema_id,
                                     rank=self.rank, world=self.world, node=self.node, layers=self.layers,
-                                    job=self.job)
+                                    job=self.job, carries=sorted(self._carries.items()))
         self._schema_sent_at = self.seq
         if self._send(frames):
             self._schema_dirty = False
@@ -373,7 +599,11 @@ class Probe:
             self._next_ping = now + CLOCK_EVERY_S
             self._send(wire.encode_ping(self.sender, self.seq, self.wall_clock()))
 
-    def close(self) -> None:
+    def close(self, drain_s: float = 2.0) -> None:
+        """Close the socket and spool; with device timing, first publish what the device finishes within
+        ``drain_s`` seconds."""
+        if self._pending:
+            self.drain(drain_s)
         if self._socket is not None:
             self._socket.close()
             self._socket = None

@@ -107,6 +107,7 @@ class Schema:
     node: str
     layers: tuple[str, ...]
     job: str = ""
+    carries: tuple[tuple[int, tuple[int, ...]], ...] = ()  # (layer, layers whose gradients it carries)
 
 
 @dataclass(frozen=True, slots=True)
@@ -177,12 +178,15 @@ def _header(kind: Kind, sender: int, seq: int, wall_ns: int, count_a: int = 0, c
 def encode_schema(
     sender: int, seq: int, wall_ns: int, *, schema_id: int, rank: int, world: int, node: str,
     layers: list[str] | tuple[str, ...], job: str = "",
+    carries: tuple[tuple[int, tuple[int, ...]], ...] | list[tuple[int, tuple[int, ...]]] = (),
 ) -> list[bytes]:
-    body = json.dumps(
-        {"schema_id": schema_id, "rank": rank, "world": world, "node": node, "layers": list(layers), "job": job},
-        ensure_ascii=False,
-        separators=(",", ":"),
-    ).encode()
+    """``carries`` (revision 1.1, optional): which layers' gradients a layer such as a DDP bucket carries,
+    as (layer index, [layer indices]); left out of the text when empty, so 1.0 schemas are unchanged."""
+    fields: dict[str, object] = {"schema_id": schema_id, "rank": rank, "world": world, "node": node,
+                                 "layers": list(layers), "job": job}
+    if carries:
+        fields["carries"] = [[layer, list(sources)] for layer, sources in carries]
+    body = json.dumps(fields, ensure_ascii=False, separators=(",", ":")).encode()
     return [_header(Kind.SCHEMA, sender, seq, wall_ns, len(layers), len(body)), body]
 
 
@@ -338,7 +342,29 @@ def _decode_schema(header: Header, blob: bytes | memoryview) -> Schema:
     if len(set(names)) != len(names):
         raise WireError("bad-schema", "duplicate layer names")
     return Schema(header, schema_id, rank, world, _name(body.get("node"), "node"), names,
-                  _name(body.get("job", ""), "job"))
+                  _name(body.get("job", ""), "job"), _carries(body.get("carries", []), len(names)))
+
+
+def _carries(value: object, n_layers: int) -> tuple[tuple[int, tuple[int, ...]], ...]:
+    """The optional ``carries`` list of a SCHEMA (revision 1.1): pairs of a layer and the distinct other
+    layers whose gradients it carries, every index in range, each layer listed once."""
+    if not isinstance(value, list) or len(value) > n_layers:
+        raise WireError("bad-schema", "carries is not a list of at most one entry per layer")
+    out: list[tuple[int, tuple[int, ...]]] = []
+    for entry in value:
+        if not (isinstance(entry, list) and len(entry) == 2 and isinstance(entry[1], list)
+                and len(entry[1]) <= n_layers):
+            raise WireError("bad-schema", "carries entry is not [layer, [layers]]")
+        layer, sources = entry
+        indices = (layer, *sources)
+        if any(type(i) is not int or not 0 <= i < n_layers for i in indices):
+            raise WireError("bad-schema", "carries names a layer out of range")
+        if len(set(indices)) != len(indices):
+            raise WireError("bad-schema", "carries repeats a layer")
+        out.append((layer, tuple(sources)))
+    if len({layer for layer, _ in out}) != len(out):
+        raise WireError("bad-schema", "carries lists a layer twice")
+    return tuple(out)
 
 
 def _array(buffer: bytes | memoryview, dtype: np.dtype, rows: int, cols: int) -> np.ndarray:

@@ -14,6 +14,7 @@ import numpy as np
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.summary import analyse, analysis_to_json
 from watchtower.analysis.summary import json_float as _f
+from watchtower.buckets import carried_label
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
 from watchtower.store import NodeInfo
@@ -63,6 +64,8 @@ def build_snapshot(
     rank_node = dict(zip(window.ranks.tolist(), window.rank_node.tolist(), strict=True))
     per_step = 1.0 / worst.steps if worst.steps else math.nan
     for i, layer in enumerate(snapshot["layers"]):
+        carried = store.carries.get(layer["name"])
+        layer["carries"] = carried_label(carried) if carried else None
         layer["worst_ranks"] = [
             {"rank": int(r), "node": node_names[rank_node[int(r)]], "compute_s": _f(c), "exchange_s": _f(e),
              "comm_fraction": _f(f), "compute_step_s": _f(c * per_step), "exchange_step_s": _f(e * per_step),

@@ -63,6 +63,7 @@ class Store:
     def __init__(self, max_cells: int = DEFAULT_MAX_CELLS) -> None:
         self.max_cells = max_cells
         self.layers: list[str] = []
+        self.carries: dict[str, tuple[str, ...]] = {}  # layer name -> layers whose gradients it carries
         self._layer_index: dict[str, int] = {}
         self.nodes: list[NodeInfo] = []
         self._node_index: dict[str, int] = {}
@@ -103,6 +104,8 @@ class Store:
 
     def add_schema(self, message: wire.Schema) -> None:
         node = self._node(message.node)
+        for layer, sources in message.carries:  # whose gradients a bucket carries (the ranks agree)
+            self.carries[message.layers[layer]] = tuple(message.layers[i] for i in sources)
         self._sender_node[message.header.sender] = node
         self.job = message.job or self.job
         if message.rank < 0:  # a node daemon: it speaks for the node, not for a rank

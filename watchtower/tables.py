@@ -82,7 +82,8 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
                  f"{percent(s.get('comm_bound_threshold'))} of the layer)", width)
     out += _table(
         ["layer", "compute", "exchange", "comm", "worst rank", "bound"],
-        [[visible(lay["name"]), seconds(lay["compute_s"]), seconds(lay["exchange_s"]), percent(lay["comm_fraction"]),
+        [[visible(lay["name"]) + (f" (gradients of {visible(lay['carries'])})" if lay.get("carries") else ""),
+          seconds(lay["compute_s"]), seconds(lay["exchange_s"]), percent(lay["comm_fraction"]),
           percent(lay["comm_fraction_worst"]), "COMM-BOUND" if lay["comm_bound"] else ""]
          for lay in s["layers"]],
         right={1, 2, 3, 4}, width=width,

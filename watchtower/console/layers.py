@@ -129,6 +129,7 @@ class LayersView(TableView):
                 f" · comm {fmt.percent(layer['comm_fraction'])},",
                 f" worst rank {fmt.percent(layer['comm_fraction_worst'])}",
                 (" · COMM-BOUND" if layer["comm_bound"] else "", self.paint("bad")),
+                *((" · gradients of ", fmt.literal(layer["carries"])) if layer.get("carries") else ()),
                 (" · enter: worst ranks", self.paint("quiet")),
             )
         )
