@@ -16,6 +16,16 @@ from .view import TableView
 SLOW_MARK = "! SLOW"
 """Symbol and word for a slow link, so it does not rely on colour."""
 ARROW = "→"
+CHECK_MARK = "chk"
+"""In the "use" column of a link measured by the node daemons' pair checks (the job sends nothing over it)."""
+
+
+def checked_label(link: Record) -> str:
+    """"measured by check every N s" for a link the pair checks measured, else ""."""
+    if link.get("measured_by") != "check":
+        return ""
+    every = link.get("check_every_s")
+    return "measured by check" + ("" if every is None else f" every {every:.0f} s")
 
 SORT_KEYS = (
     SortKey("score", lambda r: r["score"], descending=False, how=("score", "slow")),
@@ -104,7 +114,8 @@ class LinksView(TableView):
             Text(SLOW_MARK if slow else "", bad),
             fmt.fit(link_name(link, self._short), 15),
             Text(fmt.rate(link["bandwidth_Bps"]), bad if slow else "", justify="right"),
-            Text(fmt.percent(link["utilisation"]), justify="right"),
+            Text(CHECK_MARK if link.get("measured_by") == "check" else fmt.percent(link["utilisation"]),
+                 justify="right"),
             Text(fmt.seconds(link["latency_s"]), justify="right"),
             Text(fmt.number(link["score"]), justify="right"),
             Text(fmt.hours(link["hours_at_stake"]), justify="right"),
@@ -120,12 +131,16 @@ class LinksView(TableView):
     def _retitle(self) -> None:
         table = self.table
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
-        slow = sum(1 for link in self.snapshot["links"] if link["slow"]) if self.snapshot else 0
+        links = self.snapshot["links"] if self.snapshot else []
+        slow = sum(1 for link in links if link["slow"])
+        checked = next((label for link in links if (label := checked_label(link))), "")
         title = Text.assemble(
             (f"{len(table.rows)} links", self.paint("title")),
             f" by {table.sort_key.label} {arrow} · ",
             (SLOW_MARK, self.paint("bad")),
-            f" {slow} slow · use = throughput/nominal · ←→ scroll",
+            f" {slow} slow · use = throughput/nominal",
+            f" ({CHECK_MARK}: {checked})" if checked else "",
+            " · ←→ scroll",
         )
         self.query_one("#links-title", Static).update(title)
 
@@ -146,6 +161,7 @@ class LinksView(TableView):
                 f" · {fmt.hours(link['hours_at_stake'])} at stake · {fmt.count(link['transfers'])} transfers,",
                 f" {fmt.count(link['bytes'])} B · port ",
                 port,
+                f" · {label}" if (label := checked_label(link)) else "",
             )
         )
 
