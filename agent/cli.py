@@ -173,6 +173,9 @@ def build_parser() -> argparse.ArgumentParser:
                      help="mean halo size; layers vary from 1/8 to 2 times it")
     job.add_argument("--compute-ms", type=_positive(float, allow_zero=True), default=5.0,
                      help="compute time per layer")
+    job.add_argument("--collective", action="store_true",
+                     help="a job that only uses collectives: each step ends with a ring allreduce of "
+                          "--exchange-bytes (no halo exchanges)")
     job.add_argument("--seed", type=int, default=0)
     job.add_argument("--connect-timeout", type=_positive(float), default=30.0,
                      help="seconds to wait for neighbours to come up")
@@ -262,7 +265,7 @@ def _workload(args: argparse.Namespace) -> int:
     config = WorkloadConfig(rank=args.rank, peers=args.peers, collector=args.collector, node=args.node,
                             steps=args.steps, layers=args.layers, exchange_bytes=args.exchange_bytes,
                             compute_ms=args.compute_ms, seed=args.seed, connect_timeout_s=args.connect_timeout,
-                            curve_keys=_keys(args), spool=args.spool)
+                            curve_keys=_keys(args), spool=args.spool, collective=args.collective)
     result = run_workload(config)
     print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
     return 0
