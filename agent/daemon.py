@@ -177,27 +177,32 @@ class NodeDaemon:
                 self.publish(self._sampler.sample())
                 self.check_tick()
         finally:
-            self._steer.send(b"TERMINATE")
-            proxy.join()
-            if self.checker is not None:
+            if self.checker is not None:  # its last results leave before the relay stops
                 self.checker.stop()
                 self.checker.listener.close()
+                self._send_results()
+            self._steer.send(b"TERMINATE")
+            proxy.join()
 
     def check_tick(self) -> None:
         """Send the checker's results since the last tick, and (unless a cluster file lists the listeners)
         tell the collector where this node's listener is; its answer is read with the other replies."""
-        checker = self.checker
-        if checker is None:
+        if self.checker is None:
             return
+        self._send_results()
+        if not (self._check_options and self._check_options.endpoints):
+            self._send(wire.encode_check_hello(self.sender, self.seq, time.time_ns(), node=self.node,
+                                               endpoint=self.check_endpoint))
+        self._read_replies()
+
+    def _send_results(self) -> None:
+        checker = self.checker
+        assert checker is not None
         peers, table = checker.drain()
         if table.shape[1]:
             self._send(wire.encode_checks(self.sender, self.seq, time.time_ns(), period_s=checker.period_s,
                                           budget=checker.config.budget, deferred_total=checker.deferred,
                                           peers=peers, results=table))
-        if not (self._check_options and self._check_options.endpoints):
-            self._send(wire.encode_check_hello(self.sender, self.seq, time.time_ns(), node=self.node,
-                                               endpoint=self.check_endpoint))
-        self._read_replies()
 
     def _read_replies(self) -> None:
         """Take what the collector sent back and nobody waits for: late pongs (dropped), peer lists."""

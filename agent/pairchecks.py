@@ -38,9 +38,10 @@ REPLY_MAGIC = b"wtpa"
 MAX_PAYLOAD = MAX_LARGE_BYTES
 CHUNK = 1 << 16
 IO_TIMEOUT_S = 5.0  # a check that takes longer is abandoned (the peer is gone or the link is down)
-BUSY_WINDOW_S = 0.02  # how long the NIC counters are watched before each message
+BUSY_WINDOW_S = 0.01  # how long the NIC counters are watched at a time before a message
 BUSY_SHARE = 0.05  # the job's traffic above this share of nominal defers a check; common practice, no source
-BACKOFF_S = 0.05  # wait before looking again when the job is busy
+JUST_ENDED_S = 0.1  # a slot's first message goes within this long after the job's exchange ended; no source
+IDLE_S = 2.0  # or after this long without any job exchange (a job that sends nothing, or none at all)
 OVERHEAD = 1.06  # NIC counters see headers too: check payload × this is taken as the checks' own traffic
 _ZEROS = bytes(CHUNK)
 
@@ -201,6 +202,7 @@ class PairChecker:
         self.deferred = 0
         self.nodes_planned = 0
         self._weights: dict[tuple[str, str], float] = {}
+        self._busy_at = -IDLE_S  # monotonic time the job's traffic was last seen
         self._client = CheckClient()
         self._nic_bytes = nic_bytes
         self._clock_ns = clock_ns
@@ -241,8 +243,8 @@ class PairChecker:
         end_ns = (slot + 1) * slot_ns
         timed = 0
         sizes = self.config.sizes
-        for nbytes in [sizes.small, sizes.large] * sizes.repeats:
-            if not self._quiet(end_ns):
+        for k, nbytes in enumerate([sizes.small, sizes.large] * sizes.repeats):
+            if not self._quiet(end_ns, first=k == 0):
                 self.deferred += 1
                 break
             start = self._clock_ns()
@@ -266,17 +268,26 @@ class PairChecker:
         self._weights = weights
         return nodes
 
-    def _quiet(self, end_ns: int) -> bool:
-        """Wait (until ``end_ns`` at most) for the job's own traffic to fall under the busy share."""
+    def _quiet(self, end_ns: int, first: bool) -> bool:
+        """Wait (until ``end_ns`` at most) for a moment the job's own traffic leaves the port alone.
+
+        Every message waits until the NIC counters, less the checks' own bytes, show under ``busy_share`` of
+        nominal. A slot's first message also waits for the job's exchange to have *just* ended (or for the
+        job to have been quiet for ``IDLE_S``): a synchronous job computes between its exchanges, so that
+        is when a check has the longest time before the next exchange, and the least chance to delay it."""
         limit = self.config.busy_share * self.config.nominal_Bps * BUSY_WINDOW_S
-        while not self._stop.is_set() and self._clock_ns() < end_ns - int(BUSY_WINDOW_S * 2e9):
+        window_ns = int(BUSY_WINDOW_S * 1e9)
+        while not self._stop.is_set() and self._clock_ns() < end_ns - 2 * window_ns:
             ours = self._client.bytes_moved + self.listener.bytes_moved
             before = self._nic_bytes()
             time.sleep(BUSY_WINDOW_S)
             ours = (self._client.bytes_moved + self.listener.bytes_moved - ours) * OVERHEAD
-            if self._nic_bytes() - before - ours <= limit:
+            now = time.monotonic()
+            if self._nic_bytes() - before - ours > limit:
+                self._busy_at = now
+                continue
+            if not first or now - self._busy_at <= JUST_ENDED_S or now - self._busy_at >= IDLE_S:
                 return True
-            self._stop.wait(BACKOFF_S)
         return False
 
     def drain(self) -> tuple[tuple[str, ...], np.ndarray]:
