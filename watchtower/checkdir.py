@@ -2,14 +2,15 @@
 every listener known, with the pairs the schedule should favour (CHECK_PEERS).
 
 The weights come from the checks already received (uncertain and suspected pairs,
-``analysis.checks.check_weights``), recomputed at most every ``WEIGHTS_EVERY_S``; the stamp changes only
+``analysis.checks.check_weights``) and from the job's own recent throughput (a pair far below the others
+is suspected, ``job_suspects``), recomputed at most every ``WEIGHTS_EVERY_S``; the stamp changes only
 when the list or the weights do, so daemons that fetch at different moments plan their cycles alike.
 """
 
 from __future__ import annotations
 
 from agent import wire
-from watchtower.analysis.checks import check_weights
+from watchtower.analysis.checks import check_weights, job_suspects
 from watchtower.store import Store
 
 WEIGHTS_EVERY_S = 10.0
@@ -32,7 +33,8 @@ class CheckDirectory:
             self.endpoints[hello.node] = hello.endpoint
         if now_ns - self._weighed_ns >= WEIGHTS_EVERY_S * 1e9:
             self._weighed_ns = now_ns
-            weights = check_weights(self.store.checks(), tuple(n.name for n in self.store.nodes))
+            weights = check_weights(self.store.checks(), tuple(n.name for n in self.store.nodes),
+                                    job_suspects(self.store.recent_link_rates()))
             weights = tuple(sorted(weights, key=lambda w: -w[2])[:MAX_WEIGHTS])
             changed |= weights != self.weights
             self.weights = weights

@@ -182,6 +182,17 @@ class Store:
             self._check_rows -= self._checks.pop(0).shape[1]
         return True
 
+    def recent_link_rates(self, steps: int = 8) -> dict[tuple[str, str], float]:
+        """Each node pair's job throughput (bytes / transfer time) over the newest ``steps`` steps that have
+        any: what the job's own timings say of a link, for choosing what the pair checks look at first."""
+        totals: dict[tuple[int, int], list[float]] = {}
+        for step in sorted(self._series_links)[-steps:]:
+            for pair, (nbytes, seconds, _) in self._series_links[step].items():
+                cell = totals.setdefault(pair, [0.0, 0.0])
+                cell[0] += nbytes
+                cell[1] += seconds
+        return {(self.nodes[s].name, self.nodes[d].name): b / t for (s, d), (b, t) in totals.items() if t > 0}
+
     def checks(self) -> Checks:
         """Every pair-check result still held, oldest first."""
         if not self._checks:

@@ -131,3 +131,33 @@ def test_a_bad_cluster_file_is_a_one_line_usage_error(tmp_path: Path) -> None:
                           check=False)
     assert done.returncode == 2 and "is not \"HOST:PORT\"" in done.stderr
     assert len(done.stderr.strip().splitlines()) == 1
+
+
+def test_directory_answers_with_every_listener_and_the_pairs_to_favour() -> None:
+    """The collector's answer: listeners sorted by node, a stamp that moves only on change, and the pair the
+    job's own throughput suspects (a third of its peers' rate) weighted to be checked first."""
+    from agent.checkplan import SUSPECT_WEIGHT
+    from watchtower.checkdir import CheckDirectory
+
+    ingest = Ingest()
+    t0 = 10**18
+    for rank, node in enumerate(["j0", "j1", "j2"]):
+        ingest.feed(t0, wire.encode_schema(10 + rank, 0, t0, schema_id=1, rank=rank, world=3, node=node,
+                                           layers=["halo"]))
+    for step in range(4):
+        for rank in range(3):  # each rank receives 1 MB from its left neighbour; j1's arrives 5× slower
+            left = (rank - 1) % 3
+            seconds_ns = 100_000_000 if left == 1 else 20_000_000
+            table = np.array([[0], [int(wire.Op.RECV)], [left], [0], [1_000_000], [0], [seconds_ns], [0]], np.int64)
+            ingest.feed(t0, wire.encode_step(10 + rank, 1 + step, t0, step=step, duration_ns=10**8, dropped_total=0,
+                                             schema_id=1, layer_ns=np.array([[1], [1]], np.int64), exchanges=table))
+    directory = CheckDirectory(ingest.store, sender=1)
+    hello = wire.decode(wire.encode_check_hello(5, 0, 0, node="j2", endpoint="10.0.0.3:7100"))
+    first = wire.decode(directory.answer(hello, 20 * 10**9, 0))
+    assert first.peers == (("j2", "10.0.0.3:7100"),) and first.stamp_ns == 20 * 10**9
+    assert first.weights == (("j1", "j2", SUSPECT_WEIGHT),)
+    again = wire.decode(directory.answer(hello, 21 * 10**9, 1))
+    assert again.stamp_ns == first.stamp_ns  # nothing changed: daemons keep planning alike
+    other = wire.decode(wire.encode_check_hello(6, 0, 0, node="j0", endpoint="10.0.0.1:7100"))
+    third = wire.decode(directory.answer(other, 22 * 10**9, 2))
+    assert [p[0] for p in third.peers] == ["j0", "j2"] and third.stamp_ns == 22 * 10**9

@@ -123,6 +123,14 @@ def check_weights(checks: Checks, nodes: tuple[str, ...],
     return tuple((nodes[s], nodes[d], w) for (s, d), w in sorted(weights.items()) if w > 1.0)
 
 
+def job_suspects(rates: dict[tuple[str, str], float]) -> frozenset[tuple[str, str]]:
+    """Pairs the job's own recent throughput puts under a third of the median pair's (at least 3 pairs)."""
+    if len(rates) < 3:
+        return frozenset()
+    median = float(np.median(list(rates.values())))
+    return frozenset(pair for pair, rate in rates.items() if rate < FAR_BELOW_PEERS * median)
+
+
 def check_rate_series(checks: Checks) -> RunSeries:
     """Per job step and directed pair, the median rate of the large check messages that arrived in that step:
     what degradation alerts watch for links only checks measure (step time is left to the job's series)."""
