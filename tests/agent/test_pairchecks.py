@@ -191,17 +191,17 @@ def test_checker_runs_its_slot_and_backs_off_while_the_job_is_busy() -> None:
     book = WeightBook(margin_s=0.0)
     book.add(0, ["a", "b"], {})
     config = CheckConfig("a", sizes, slot_seconds(sizes, 50e6, 0.01), 0.01, 50e6)
-    checker = PairChecker(config, book, listener, nic_bytes=nic_bytes)
+    base = time.time_ns()  # slot 0 starts now: the whole slot is ahead of the checker
+    checker = PairChecker(config, book, listener, nic_bytes=nic_bytes, clock_ns=lambda: time.time_ns() - base)
     checker.endpoints = {"b": f"127.0.0.1:{listener.port}"}
     slot_ns = int(config.slot_s * 1e9)
     try:
-        slot = time.time_ns() // slot_ns
-        assert checker.run_slot(slot, slot_ns) == 2 * sizes.repeats
+        assert checker.run_slot(0, slot_ns) == 2 * sizes.repeats
         peers, table = checker.drain()
         assert peers == ("b",) and table.shape == (4, 2 * sizes.repeats)
         assert sorted(set(table[wire.C_NBYTES].tolist())) == [sizes.small, sizes.large]
         busy["on"] = True
-        assert checker.run_slot(time.time_ns() // slot_ns, slot_ns) == 0
+        assert checker.run_slot(1, slot_ns) == 0
         assert checker.deferred == 1
         assert checker.drain()[1].shape == (4, 0)
     finally:
@@ -248,3 +248,35 @@ def test_bad_check_endpoints_are_rejected(endpoint: str) -> None:
     with pytest.raises(wire.WireError) as caught:
         wire.decode(wire.encode_check_hello(1, 0, 0, node="n0", endpoint=endpoint))
     assert caught.value.reason == "bad-check"
+
+
+def test_a_slots_first_check_waits_for_the_jobs_exchange_to_end() -> None:
+    """The job is busy for the first 0.2 s of the slot, then computes: the first message goes within
+    JUST_ENDED_S of the end of the job's traffic, not while it is in flight."""
+    from agent.pairchecks import JUST_ENDED_S
+
+    listener = CheckListener("127.0.0.1", 0)
+    sizes = check_sizes(50e6)
+    busy_until = time.monotonic() + 0.2
+    total = {"bytes": 0}
+
+    def nic_bytes() -> int:
+        total["bytes"] += 1_000_000 if time.monotonic() < busy_until else 0
+        return total["bytes"]
+
+    book = WeightBook(margin_s=0.0)
+    book.add(0, ["a", "b"], {})
+    config = CheckConfig("a", sizes, 5.0, 0.01, 50e6)
+    base = time.time_ns()
+    checker = PairChecker(config, book, listener, nic_bytes=nic_bytes, clock_ns=lambda: time.time_ns() - base)
+    checker.endpoints = {"b": f"127.0.0.1:{listener.port}"}
+    slot_ns = int(config.slot_s * 1e9)
+    try:
+        assert checker.run_slot(0, slot_ns) == 2 * sizes.repeats
+        _, table = checker.drain()
+        first_ns = int(table[wire.C_START].min())
+        ended_ns = time.time_ns() - base - int((time.monotonic() - busy_until) * 1e9)
+        assert 0 <= first_ns - ended_ns <= (JUST_ENDED_S + 0.05) * 1e9
+    finally:
+        checker.stop()
+        listener.close()
