@@ -72,6 +72,7 @@ class CheckListener:
         self._sock.setblocking(False)
         self.port = self._sock.getsockname()[1]
         self.bytes_moved = 0
+        self._sink = bytearray(CHUNK)  # payloads are read into it and forgotten
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._serve, name="watchtower-check-listener", daemon=True)
         self._thread.start()
@@ -107,7 +108,7 @@ class CheckListener:
             raise CheckProtocolError("not a pair-check request")
         left = nbytes
         while left:
-            got = conn.recv_into(memoryview(bytearray(min(left, CHUNK))))
+            got = conn.recv_into(self._sink, min(left, CHUNK))
             if not got:
                 raise CheckProtocolError("connection closed")
             left -= got
