@@ -14,6 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from agent.checkplan import SUSPECT_WEIGHT
 from watchtower.analysis.efficiency import FAR_BELOW_PEERS
 from watchtower.analysis.robust import HockneyFit, fit_hockney
 from watchtower.analysis.window import RunSeries
@@ -21,7 +22,6 @@ from watchtower.analysis.window import RunSeries
 RECENT_PER_PAIR = 32  # newest results per pair fitted: 4 cycles of (small, large) × 2 messages; no source
 CHECK_QUANTILE = 0.25  # checks can meet the job's bursts (one-sided delay): the lower quartile, as for waits
 UNCERTAIN_SPREAD = 0.1  # interquartile spread of large-message rates / median above which a pair is uncertain
-SUSPECT_WEIGHT = 4.0  # the schedule checks pairs of at least this weight first (agent.checkplan)
 MIN_LARGE = 4  # large-message results below which a pair's estimate counts as uncertain
 
 
