@@ -19,7 +19,11 @@ from collections.abc import Callable, Sequence
 from importlib import metadata
 from typing import NoReturn
 
-from agent.daemon import DaemonError, default_local_endpoint, run_daemon
+import psutil
+
+from agent.checkfile import CheckFileError, load_check_file
+from agent.checkplan import DEFAULT_BUDGET
+from agent.daemon import CheckOptions, DaemonError, default_local_endpoint, run_daemon
 from agent.keys import KeyFileError, curve_keys
 from agent.workload import ConnectError, WorkloadConfig, WorkloadError, run_workload
 
@@ -104,6 +108,23 @@ def peer_list(text: str) -> tuple[tuple[str, int], ...]:
     return peers
 
 
+def host_port_arg(text: str) -> tuple[str, int]:
+    try:
+        return host_port(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _share(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not 0 < value <= 1:
+        raise argparse.ArgumentTypeError(f"{text!r} must be a share in (0, 1], e.g. 0.01 for 1 %")
+    return value
+
+
 def _positive(kind: type[int] | type[float], allow_zero: bool = False) -> Callable[[str], int | float]:
     """An argparse type for a finite number above zero (or at least zero)."""
     def parse(text: str) -> int | float:
@@ -136,6 +157,19 @@ def build_parser() -> argparse.ArgumentParser:
                      help=f"endpoint local probes publish to (default: {default_local_endpoint()})")
     run.add_argument("--interval", type=_positive(float), default=1.0,
                      help="seconds between node samples (default %(default)s)")
+    run.add_argument("--pair-checks", action="store_true",
+                     help="measure this node's links with light checks to the other daemons (for jobs that "
+                          "only use collectives); see README, 'Pair checks'")
+    run.add_argument("--check-budget", type=_share, default=None,
+                     help=f"share of the nominal rate the checks may use (default {DEFAULT_BUDGET:g}, or the "
+                          "cluster file's [checks] budget)")
+    run.add_argument("--check-nominal", type=_positive(float), default=None, metavar="BYTES_PER_S",
+                     help="this node's nominal rate in bytes/s (default: the cluster file, else the NIC's speed)")
+    run.add_argument("--check-listen", type=host_port_arg, default=None, metavar="HOST:PORT",
+                     help="where the check listener binds (default: the address that reaches the collector, "
+                          "any free port)")
+    run.add_argument("--cluster", metavar="FILE",
+                     help="cluster file: nominal rates, [checks] budget and the listeners of every node")
     _key_options(run)
 
     job = commands.add_parser("workload", help="run one rank of a ring halo-exchange job to watch")
@@ -154,6 +188,9 @@ def build_parser() -> argparse.ArgumentParser:
                      help="mean halo size in bytes; layers vary from 1/8 to 2 times it (default %(default)s)")
     job.add_argument("--compute-ms", type=_positive(float, allow_zero=True), default=5.0,
                      help="compute time per layer in milliseconds (default %(default)s)")
+    job.add_argument("--collective", action="store_true",
+                     help="a job that only uses collectives: each step ends with a ring allreduce of "
+                          "--exchange-bytes (no halo exchanges)")
     job.add_argument("--seed", type=int, default=0,
                      help="seed of the halo sizes and the weights; give every rank the same (default %(default)s)")
     job.add_argument("--connect-timeout", type=_positive(float), default=30.0,
@@ -177,12 +214,62 @@ def _keys(args: argparse.Namespace) -> tuple[bytes, bytes, bytes] | None:
         raise UsageError(str(exc)) from None
 
 
+def _route_address(collector: str) -> str:
+    """The local address this node uses to reach the collector: what other nodes can reach it at too."""
+    if not collector.startswith("tcp://"):
+        return "127.0.0.1"
+    host, port = host_port(collector.removeprefix("tcp://"))
+    try:
+        family = socket.AF_INET6 if ":" in host else socket.AF_INET
+        with socket.socket(family, socket.SOCK_DGRAM) as probe:
+            probe.connect((host, port))  # UDP: picks the route, sends nothing
+            return probe.getsockname()[0]
+    except OSError:
+        return "127.0.0.1"
+
+
+def _nic_speed_Bps(address: str) -> float | None:
+    """The link speed the kernel reports for the interface holding ``address`` (None when unknown)."""
+    for name, addresses in psutil.net_if_addrs().items():
+        if any(a.address == address for a in addresses):
+            stats = psutil.net_if_stats().get(name)
+            if stats is not None and stats.speed > 0:
+                return stats.speed * 1e6 / 8
+    return None
+
+
+def _check_options(args: argparse.Namespace) -> CheckOptions | None:
+    if not args.pair_checks:
+        if args.check_budget is not None or args.check_nominal is not None or args.check_listen is not None:
+            raise UsageError("--check-budget, --check-nominal and --check-listen need --pair-checks")
+        return None
+    try:
+        file = load_check_file(args.cluster, args.node) if args.cluster else None
+    except CheckFileError as exc:
+        raise UsageError(str(exc)) from None
+    address = _route_address(args.collector)
+    host, port = args.check_listen or (address, 0)
+    nominal = args.check_nominal or (file and file.nominal_Bps) or _nic_speed_Bps(host)
+    if nominal is None:
+        raise UsageError("--pair-checks needs the node's nominal rate: give --check-nominal BYTES_PER_S or a "
+                         "cluster file with [network] nic_Bps")
+    budget = args.check_budget or (file and file.budget) or DEFAULT_BUDGET
+    endpoints = dict(file.endpoints) if file else {}
+    if endpoints and args.node not in endpoints:
+        raise UsageError(f"the cluster file's [checks.endpoints] does not list this node ({args.node})")
+    if endpoints and args.check_listen is None:  # listen where the file says others will look
+        host, port = host_port(endpoints[args.node])
+    return CheckOptions(nominal_Bps=nominal, budget=budget, listen_host=host, listen_port=port,
+                        advertise_host=host if host not in ("0.0.0.0", "::") else address, endpoints=endpoints)
+
+
 def _run(args: argparse.Namespace) -> int:
     keys = _keys(args)
+    checks = _check_options(args)
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
-    run_daemon(args.collector, args.node, args.local, args.interval, stop, curve_keys=keys)
+    run_daemon(args.collector, args.node, args.local, args.interval, stop, curve_keys=keys, checks=checks)
     return 0
 
 
@@ -194,7 +281,7 @@ def _workload(args: argparse.Namespace) -> int:
     config = WorkloadConfig(rank=args.rank, peers=args.peers, collector=args.collector, node=args.node,
                             steps=args.steps, layers=args.layers, exchange_bytes=args.exchange_bytes,
                             compute_ms=args.compute_ms, seed=args.seed, connect_timeout_s=args.connect_timeout,
-                            curve_keys=_keys(args), spool=args.spool)
+                            curve_keys=_keys(args), spool=args.spool, collective=args.collective)
     result = run_workload(config)
     print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
     return 0

@@ -8,6 +8,11 @@ the ROUTER added. At the collector a relayed frame arrives as
 The daemon speaks for the node itself through a DEALER of its own, connected to its ROUTER over inproc, so
 its SCHEMA (rank -1) and NODE samples share the uplink. It follows the probe's rules: sequence numbers on
 every frame, NOBLOCK sends, drops counted and the schema re-announced after one.
+
+With pair checks (``CheckOptions``) the daemon also runs a check listener and a checker thread
+(``agent.pairchecks``): it says where its listener is (CHECK_HELLO) at every sample, learns the other
+daemons' listeners from the collector's CHECK_PEERS answer (or a cluster file), and sends the checker's
+results as CHECK records on the same uplink. Training processes are never involved.
 """
 
 from __future__ import annotations
@@ -19,12 +24,15 @@ import socket
 import tempfile
 import threading
 import time
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import zmq
 
 from agent import wire
+from agent.checkplan import DEFAULT_BUDGET, WeightBook, check_sizes, slot_seconds
 from agent.nodestats import NodeFigures, NodeSampler
+from agent.pairchecks import CheckConfig, CheckListener, PairChecker
 from agent.probe import CLOCK_EVERY_S, SCHEMA_EVERY
 
 LINGER_MS = 500  # on stop, frames still queued for the collector get this long to leave
@@ -33,8 +41,24 @@ PUBLISH_HWM = 64
 PONG_WAIT_MS = 200  # how long the daemon waits for the collector's answer to a clock ping
 
 
+PLAN_MARGIN_S = 2.5  # a cycle is planned with the peer list the collector stamped this long before it
+
+
 class DaemonError(RuntimeError):
     """The daemon could not start (for example its local endpoint cannot be bound)."""
+
+
+@dataclass(frozen=True)
+class CheckOptions:
+    """Pair checks: the node's nominal rate and the budget's share of it, where to listen and what to
+    announce, and (from a cluster file) the listeners of every node, which replaces asking the collector."""
+
+    nominal_Bps: float
+    budget: float = DEFAULT_BUDGET
+    listen_host: str = "0.0.0.0"
+    listen_port: int = 0
+    advertise_host: str = "127.0.0.1"
+    endpoints: dict[str, str] = field(default_factory=dict)
 
 
 def default_local_endpoint() -> str:
@@ -47,7 +71,8 @@ class NodeDaemon:
 
     def __init__(self, collector_endpoint: str, node: str, local_endpoint: str | None = None, *,
                  interval_s: float = 1.0, sampler: NodeSampler | None = None,
-                 context: zmq.Context | None = None, curve_keys: tuple[bytes, bytes, bytes] | None = None) -> None:
+                 context: zmq.Context | None = None, curve_keys: tuple[bytes, bytes, bytes] | None = None,
+                 checks: CheckOptions | None = None) -> None:
         if interval_s <= 0:
             raise ValueError("the sampling interval must be positive")
         self.node = node
@@ -62,6 +87,8 @@ class NodeDaemon:
         self._next_ping = 0.0
         self.pong_wait_ms = PONG_WAIT_MS
         self._sampler = sampler or NodeSampler()
+        self.checker: PairChecker | None = None
+        self._check_options = checks
         self._ipc_path: Path | None = None  # set once bound: the file close() removes
         self._made_dir = self._prepare_ipc(self.local_endpoint)
         self._own_context = context is None
@@ -91,6 +118,25 @@ class NodeDaemon:
             self.close()
             raise DaemonError(f"cannot start the relay ({self.local_endpoint} -> {collector_endpoint}): "
                               f"{exc.strerror}") from None
+        if checks is not None:
+            self._start_checks(checks)
+
+    def _start_checks(self, options: CheckOptions) -> None:
+        try:
+            listener = CheckListener(options.listen_host, options.listen_port)
+        except OSError as exc:
+            self.close()
+            raise DaemonError(f"cannot listen for pair checks on {options.listen_host}:{options.listen_port}: "
+                              f"{exc.strerror}") from None
+        sizes = check_sizes(options.nominal_Bps)
+        config = CheckConfig(self.node, sizes, slot_seconds(sizes, options.nominal_Bps, options.budget),
+                             options.budget, options.nominal_Bps)
+        self.check_endpoint = f"{options.advertise_host}:{listener.port}"
+        book = WeightBook(PLAN_MARGIN_S)
+        self.checker = PairChecker(config, book, listener)
+        if options.endpoints:  # a cluster file lists every listener: the plan holds from the start
+            book.add(0, list(options.endpoints), {})
+            self.checker.endpoints = dict(options.endpoints)
 
     def _socket(self, kind: int, *, linger: int) -> zmq.Socket:
         sock = self._ctx.socket(kind)
@@ -120,15 +166,59 @@ class NodeDaemon:
         proxy = threading.Thread(target=zmq.proxy_steerable, name="watchtower-relay", daemon=True,
                                  args=(self._frontend, self._backend, None, self._control))
         proxy.start()
+        if self.checker is not None:
+            self.checker.start()
         try:
             self._send_schema()
+            self.check_tick()
             next_at = time.monotonic() + self.interval_s
             while not stop.wait(max(0.0, next_at - time.monotonic())):
                 next_at = max(next_at + self.interval_s, time.monotonic())
                 self.publish(self._sampler.sample())
+                self.check_tick()
         finally:
+            if self.checker is not None:  # its last results leave before the relay stops
+                self.checker.stop()
+                self.checker.listener.close()
+                self._send_results()
             self._steer.send(b"TERMINATE")
             proxy.join()
+
+    def check_tick(self) -> None:
+        """Send the checker's results since the last tick, and (unless a cluster file lists the listeners)
+        tell the collector where this node's listener is; its answer is read with the other replies."""
+        if self.checker is None:
+            return
+        self._send_results()
+        if not (self._check_options and self._check_options.endpoints):
+            self._send(wire.encode_check_hello(self.sender, self.seq, time.time_ns(), node=self.node,
+                                               endpoint=self.check_endpoint))
+        self._read_replies()
+
+    def _send_results(self) -> None:
+        checker = self.checker
+        assert checker is not None
+        peers, table = checker.drain()
+        if table.shape[1]:
+            self._send(wire.encode_checks(self.sender, self.seq, time.time_ns(), period_s=checker.period_s,
+                                          budget=checker.config.budget, deferred_total=checker.deferred,
+                                          peers=peers, results=table))
+
+    def _read_replies(self) -> None:
+        """Take what the collector sent back and nobody waits for: late pongs (dropped), peer lists."""
+        while self._publisher.poll(0):
+            self._reply(self._publisher.recv_multipart())
+
+    def _reply(self, reply: list[bytes]) -> wire.Message | None:
+        try:
+            message = wire.decode(reply[1:] if reply and not reply[0] else reply)
+        except wire.WireError:
+            return None
+        if isinstance(message, wire.CheckPeers) and self.checker is not None:
+            self.checker.book.add(message.stamp_ns, [node for node, _ in message.peers],
+                                  {(a, b): w for a, b, w in message.weights})
+            self.checker.endpoints = dict(message.peers)
+        return message
 
     def publish(self, figures: NodeFigures) -> bool:
         """Send one NODE sample (and the schema when due), then sync the clock when due.
@@ -165,28 +255,33 @@ class NodeDaemon:
         Unlike a probe, the daemon can afford to wait briefly for the pong, and must: a pong read late makes
         t3 late and biases the offset by half the delay. So a pong that misses the wait is discarded.
         """
-        while self._publisher.poll(0):  # late pongs from an earlier ping
-            self._publisher.recv_multipart()
+        self._read_replies()  # late pongs from an earlier ping, peer lists
         now = time.monotonic()
         if now < self._next_ping:
             return
         self._next_ping = now + CLOCK_EVERY_S
         t0 = time.time_ns()
-        if not self._send(wire.encode_ping(self.sender, self.seq, t0)) or not self._publisher.poll(self.pong_wait_ms):
+        if not self._send(wire.encode_ping(self.sender, self.seq, t0)):
             return
-        reply = self._publisher.recv_multipart()
-        t3 = time.time_ns()
-        try:
-            message = wire.decode(reply[1:] if reply and not reply[0] else reply)
-        except wire.WireError:
-            return
-        if isinstance(message, wire.ClockPong) and message.t0 == t0:
-            self.offset_ns, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
-            self._send(wire.encode_offset(self.sender, self.seq, t3, self.offset_ns, delay))
+        give_up = time.monotonic() + self.pong_wait_ms / 1000
+        while self._publisher.poll(max(0, int((give_up - time.monotonic()) * 1000))):
+            reply = self._publisher.recv_multipart()
+            t3 = time.time_ns()
+            message = self._reply(reply)
+            if isinstance(message, wire.ClockPong) and message.t0 == t0:
+                self.offset_ns, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
+                self._send(wire.encode_offset(self.sender, self.seq, t3, self.offset_ns, delay))
+                return
+            if time.monotonic() >= give_up:
+                return
 
     # ------------------------------------------------------------------------------------ cleanup
     def close(self) -> None:
         """Close the sockets and remove the ipc socket file (and its folder, if the daemon made it)."""
+        if self.checker is not None:
+            self.checker.stop()
+            self.checker.listener.close()
+            self.checker = None
         for sock in self._sockets:
             sock.close()
         self._sockets.clear()
@@ -216,9 +311,10 @@ def _listening(path: Path) -> bool:
 
 def run_daemon(collector_endpoint: str, node: str, local_endpoint: str | None = None, interval_s: float = 1.0,
                stop_event: threading.Event | None = None,
-               curve_keys: tuple[bytes, bytes, bytes] | None = None) -> None:
+               curve_keys: tuple[bytes, bytes, bytes] | None = None, checks: CheckOptions | None = None) -> None:
     """Run a node daemon until ``stop_event`` is set (forever without one)."""
-    daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s, curve_keys=curve_keys)
+    daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s, curve_keys=curve_keys,
+                        checks=checks)
     try:
         daemon.serve(stop_event or threading.Event())
     finally:

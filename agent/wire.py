@@ -30,6 +30,9 @@ MAX_NICS = 64
 MAX_NAME_BYTES = 256
 MAX_SCHEMA_BYTES = MAX_LAYERS * (MAX_NAME_BYTES + 8) + 4096
 MAX_WORLD = 1 << 20
+MAX_CHECK_PEERS = 4096  # nodes a pair-check message may name
+MAX_CHECK_RESULTS = 4096  # pair-check results in one CHECK message
+MAX_ENDPOINT_BYTES = 256
 
 
 class Kind(IntEnum):
@@ -41,6 +44,9 @@ class Kind(IntEnum):
     CLOCK_PING = 4
     CLOCK_PONG = 5
     CLOCK_OFFSET = 6
+    CHECK_HELLO = 7
+    CHECK_PEERS = 8
+    CHECK = 9
 
 
 class Op(IntEnum):
@@ -73,6 +79,10 @@ PING_META = struct.Struct("<q")  # t0
 PONG_META = struct.Struct("<qqq")  # t0, t1, t2
 OFFSET_META = struct.Struct("<qq")  # offset_ns, round_trip_ns
 NIC_COLUMNS = ("sent_Bps", "recv_Bps", "sent_total", "recv_total")
+CHECK_META = struct.Struct("<ddQQ")  # period_s, budget (share of nominal), deferred_total, reserved
+# Pair-check result rows (int64 [CHECK_COLUMNS, K]).
+CHECK_COLUMNS = ("peer", "nbytes", "start_ns", "elapsed_ns")
+C_PEER, C_NBYTES, C_START, C_ELAPSED = range(len(CHECK_COLUMNS))
 
 _I64 = np.dtype("<i8")
 _F64 = np.dtype("<f8")
@@ -156,7 +166,42 @@ class ClockOffset:
     round_trip_ns: int
 
 
-Message = Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset
+@dataclass(frozen=True, slots=True)
+class CheckHello:
+    """A node daemon running pair checks says where other daemons reach its check listener."""
+
+    header: Header
+    node: str
+    endpoint: str  # HOST:PORT
+
+
+@dataclass(frozen=True, slots=True)
+class CheckPeers:
+    """The collector's answer to a CHECK_HELLO: every check listener it knows, and the pairs to favour.
+
+    ``weights`` are (src node, dst node, weight ≥ 1): pairs whose estimate is uncertain or that the job's
+    own figures suspect. ``stamp_ns`` is the collector's clock when the weights were set; daemons switch
+    to new weights only at a cycle boundary well after it, so that they all plan the same rounds."""
+
+    header: Header
+    peers: tuple[tuple[str, str], ...]  # (node, HOST:PORT)
+    weights: tuple[tuple[str, str, float], ...]
+    stamp_ns: int
+
+
+@dataclass(frozen=True, slots=True)
+class CheckResults:
+    """Pair checks a node daemon made from its node to peers: link records of their own kind."""
+
+    header: Header
+    period_s: float  # every ordered pair is checked at least this often while the fabric is quiet
+    budget: float  # share of the nominal rate the checks may use
+    deferred_total: int  # checks put off so far because the job's own exchanges were in flight
+    peers: tuple[str, ...]
+    results: np.ndarray  # int64 [4, K], rows per CHECK_COLUMNS
+
+
+Message = Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset | CheckHello | CheckPeers | CheckResults
 
 
 def check_name(name: str, what: str = "name") -> str:
@@ -230,6 +275,33 @@ def encode_offset(sender: int, seq: int, wall_ns: int, offset_ns: int, round_tri
     return [_header(Kind.CLOCK_OFFSET, sender, seq, wall_ns), OFFSET_META.pack(offset_ns, round_trip_ns)]
 
 
+def _text(body: object) -> bytes:
+    return json.dumps(body, ensure_ascii=False, separators=(",", ":")).encode()
+
+
+def encode_check_hello(sender: int, seq: int, wall_ns: int, *, node: str, endpoint: str) -> list[bytes]:
+    body = _text({"node": node, "endpoint": endpoint})
+    return [_header(Kind.CHECK_HELLO, sender, seq, wall_ns, 0, len(body)), body]
+
+
+def encode_check_peers(sender: int, seq: int, wall_ns: int, *, peers: list[tuple[str, str]] | tuple,
+                       weights: list[tuple[str, str, float]] | tuple = (), stamp_ns: int = 0) -> list[bytes]:
+    body = _text({"peers": [list(p) for p in peers], "weights": [list(w) for w in weights], "stamp_ns": stamp_ns})
+    return [_header(Kind.CHECK_PEERS, sender, seq, wall_ns, len(peers), len(body)), body]
+
+
+def encode_checks(sender: int, seq: int, wall_ns: int, *, period_s: float, budget: float, deferred_total: int,
+                  peers: list[str] | tuple[str, ...], results: np.ndarray) -> list[bytes]:
+    """``results`` is int64 [4, K] (rows per CHECK_COLUMNS); ``peer`` indexes ``peers``."""
+    names = _text(list(peers))
+    return [
+        _header(Kind.CHECK, sender, seq, wall_ns, results.shape[1], len(names)),
+        CHECK_META.pack(period_s, budget, deferred_total, 0),
+        names,
+        np.ascontiguousarray(results, dtype=_I64).tobytes(),
+    ]
+
+
 def clock_offset(t0: int, t1: int, t2: int, t3: int) -> tuple[int, int]:
     """NTP's estimate from a two-way exchange: offset = ((t1-t0)+(t2-t3))/2, delay = (t3-t0)-(t2-t1)."""
     return ((t1 - t0) + (t2 - t3)) // 2, (t3 - t0) - (t2 - t1)
@@ -244,6 +316,9 @@ _PARTS = {
     Kind.CLOCK_PING: 2,
     Kind.CLOCK_PONG: 2,
     Kind.CLOCK_OFFSET: 2,
+    Kind.CHECK_HELLO: 2,
+    Kind.CHECK_PEERS: 2,
+    Kind.CHECK: 4,
 }
 _META = {
     Kind.STEP: STEP_META,
@@ -251,6 +326,7 @@ _META = {
     Kind.CLOCK_PING: PING_META,
     Kind.CLOCK_PONG: PONG_META,
     Kind.CLOCK_OFFSET: OFFSET_META,
+    Kind.CHECK: CHECK_META,
 }
 
 
@@ -299,6 +375,12 @@ def decode(frames: list[bytes] | list[memoryview]) -> Message:
         return ClockPing(header, *meta)
     if header.kind is Kind.CLOCK_PONG:
         return ClockPong(header, *meta)
+    if header.kind is Kind.CHECK_HELLO:
+        return _decode_check_hello(header, frames[1])
+    if header.kind is Kind.CHECK_PEERS:
+        return _decode_check_peers(header, frames[1])
+    if header.kind is Kind.CHECK:
+        return _decode_checks(header, meta, frames[2], frames[3])
     return ClockOffset(header, *meta)
 
 
@@ -428,3 +510,65 @@ def _decode_node(header: Header, meta: tuple, names_blob: bytes, values: bytes) 
     if nic_values.size and not (np.isfinite(nic_values).all() and (nic_values >= 0).all()):
         raise WireError("bad-sample", "NIC figure not finite and non-negative")
     return NodeSample(header, cpu, memory, interval, nics, nic_values)
+
+
+def _endpoint(value: object) -> str:
+    """HOST:PORT as text (checked for shape here; the daemon resolves it when it connects)."""
+    if not isinstance(value, str) or len(value.encode()) > MAX_ENDPOINT_BYTES:
+        raise WireError("bad-check", "endpoint is not a string of at most 256 bytes")
+    host, sep, port = value.rpartition(":")
+    if not sep or not host or not port.isdigit() or not 0 < int(port) < 65536:
+        raise WireError("bad-check", "endpoint is not HOST:PORT")
+    return value
+
+
+def _decode_check_hello(header: Header, blob: bytes | memoryview) -> CheckHello:
+    body = _json(blob, header.count_b, 2 * MAX_NAME_BYTES + MAX_ENDPOINT_BYTES + 64)
+    if not isinstance(body, dict):
+        raise WireError("bad-check", "not an object")
+    return CheckHello(header, _name(body.get("node"), "node"), _endpoint(body.get("endpoint")))
+
+
+def _decode_check_peers(header: Header, blob: bytes | memoryview) -> CheckPeers:
+    if header.count_a > MAX_CHECK_PEERS:
+        raise WireError("oversize", f"{header.count_a} peers, cap {MAX_CHECK_PEERS}")
+    body = _json(blob, header.count_b, MAX_CHECK_PEERS * (3 * MAX_NAME_BYTES + MAX_ENDPOINT_BYTES + 64))
+    if not isinstance(body, dict):
+        raise WireError("bad-check", "not an object")
+    peers, weights, stamp = body.get("peers"), body.get("weights"), body.get("stamp_ns")
+    if not isinstance(peers, list) or len(peers) != header.count_a or type(stamp) is not int:
+        raise WireError("bad-check", "peer list does not match the header")
+    if not isinstance(weights, list) or len(weights) > MAX_CHECK_PEERS:
+        raise WireError("bad-check", "weights are not a list within the cap")
+    out_peers = []
+    for item in peers:
+        if not isinstance(item, list) or len(item) != 2:
+            raise WireError("bad-check", "a peer is not [node, endpoint]")
+        out_peers.append((_name(item[0], "node"), _endpoint(item[1])))
+    out_weights = []
+    for item in weights:
+        if not isinstance(item, list) or len(item) != 3 or type(item[2]) not in (int, float):
+            raise WireError("bad-check", "a weight is not [src, dst, number]")
+        if not (1.0 <= item[2] < 1e6):
+            raise WireError("bad-check", "a weight outside [1, 1e6)")
+        out_weights.append((_name(item[0], "node"), _name(item[1], "node"), float(item[2])))
+    return CheckPeers(header, tuple(out_peers), tuple(out_weights), stamp)
+
+
+def _decode_checks(header: Header, meta: tuple, names_blob: bytes, table: bytes) -> CheckResults:
+    period_s, budget, deferred, _ = meta
+    if header.count_a > MAX_CHECK_RESULTS:
+        raise WireError("oversize", f"{header.count_a} check results, cap {MAX_CHECK_RESULTS}")
+    if not (np.isfinite(period_s) and period_s > 0 and 0 < budget <= 1):
+        raise WireError("bad-check", "period not positive or budget outside (0, 1]")
+    names = _json(names_blob, header.count_b, MAX_CHECK_PEERS * (MAX_NAME_BYTES + 4) + 2)
+    if not isinstance(names, list) or len(names) > MAX_CHECK_PEERS:
+        raise WireError("bad-check", "peer names are not a list within the cap")
+    peers = tuple(_name(name, "node") for name in names)
+    results = _array(table, _I64, len(CHECK_COLUMNS), header.count_a)
+    if results.size:
+        if results[C_PEER].min() < 0 or results[C_PEER].max() >= len(peers):
+            raise WireError("bad-check", "peer index out of range")
+        if results[C_NBYTES].min() <= 0 or results[C_ELAPSED].min() <= 0:
+            raise WireError("bad-check", "non-positive bytes or time")
+    return CheckResults(header, period_s, budget, deferred, peers, results)

@@ -18,6 +18,12 @@ Records (see ``agent.probe``), one per message; the layer's exchange time is the
 
 World 1 has no neighbours: layers only compute. World 2 has one neighbour on both sides: the halo is
 exchanged once per layer with it (one SEND and one RECV), not twice.
+
+``collective=True`` makes it a job that only uses collectives, as data-parallel training does: the layers
+only compute, and each step ends with a ring allreduce of an ``exchange_bytes`` gradient (float64) over the
+same ring connections (reduce-scatter then allgather, 2(p − 1) chunk exchanges; Patarasuk & Yuan, 2009).
+It is recorded as one ALLREDUCE of the group, with no peer: the probe cannot tell which hop was slow, which
+is what the node daemons' pair checks are for.
 """
 
 from __future__ import annotations
@@ -43,6 +49,8 @@ HELLO = struct.Struct("<4sII")  # magic, rank, world: the first bytes on a new l
 HELLO_MAGIC = b"wtlk"
 HALO = struct.Struct("<4sIIqQI")  # magic, step, layer, sender wall ns at send start, halo bytes, reserved
 HALO_MAGIC = b"wtha"
+CHUNK = struct.Struct("<4sIQ")  # magic, step, chunk bytes: before every chunk of a ring allreduce
+CHUNK_MAGIC = b"wtar"
 # Linux's SO_TIMESTAMPNS (the socket module does not name it); the kernel stamps arrivals in CLOCK_REALTIME.
 SO_TIMESTAMPNS = 35
 TIMESPEC = struct.Struct("@qq")
@@ -71,6 +79,7 @@ class WorkloadConfig:
     connect_timeout_s: float = 30.0
     curve_keys: tuple[bytes, bytes, bytes] | None = None  # the probe's (public, secret, collector public)
     spool: str | None = None  # local recording of every frame the probe numbers
+    collective: bool = False  # only compute per layer, then one ring allreduce of exchange_bytes per step
 
 
 @dataclass(frozen=True, slots=True)
@@ -369,12 +378,99 @@ class HaloRing:
             link.sock.close()
 
 
+# ---------------------------------------------------------------------------------------- ring allreduce
+
+class RingAllreduce:
+    """Sums a float64 vector across the ring in place: p − 1 reduce-scatter steps, then p − 1 allgather steps,
+    each sending one chunk to the right neighbour while receiving one from the left (Patarasuk & Yuan, 2009).
+    Every rank sends 2(p − 1)/p of the vector, the bandwidth-optimal amount."""
+
+    def __init__(self, links: dict[int, socket.socket], rank: int, world: int, idle_timeout_s: float) -> None:
+        self.rank, self.world, self.idle_timeout_s = rank, world, idle_timeout_s
+        self.right = links.get((rank + 1) % world)
+        self.left = links.get((rank - 1) % world)
+        self._selector = selectors.DefaultSelector()
+
+    def allreduce(self, vector: np.ndarray, step: int) -> None:
+        p = self.world
+        if p == 1:
+            return
+        bounds = np.linspace(0, len(vector), p + 1).astype(int)
+
+        def chunk(i: int) -> slice:
+            return slice(bounds[i % p], bounds[i % p + 1])
+
+        for s in range(p - 1):  # reduce-scatter: after it, rank r holds the sum of chunk r + 1
+            got = self._send_recv(vector[chunk(self.rank - s)], vector[chunk(self.rank - s - 1)].nbytes, step)
+            vector[chunk(self.rank - s - 1)] += got
+        for s in range(p - 1):  # allgather: pass the summed chunks round
+            got = self._send_recv(vector[chunk(self.rank - s + 1)], vector[chunk(self.rank - s)].nbytes, step)
+            vector[chunk(self.rank - s)] = got
+
+    def _send_recv(self, out: np.ndarray, want: int, step: int) -> np.ndarray:
+        """Send ``out`` to the right while receiving ``want`` bytes from the left, overlapped."""
+        assert self.right is not None and self.left is not None
+        outgoing = memoryview(CHUNK.pack(CHUNK_MAGIC, step, out.nbytes) + out.tobytes())
+        incoming = bytearray(CHUNK.size + want)
+        sent = received = 0
+        sel = self._selector
+        if self.right is self.left:
+            sel.register(self.right, selectors.EVENT_READ | selectors.EVENT_WRITE)
+        else:
+            sel.register(self.right, selectors.EVENT_WRITE)
+            sel.register(self.left, selectors.EVENT_READ)
+        try:
+            while sent < len(outgoing) or received < len(incoming):
+                events = sel.select(self.idle_timeout_s)
+                if not events:
+                    raise WorkloadError(f"no allreduce traffic for {self.idle_timeout_s:g} s in step {step}")
+                for key, mask in events:
+                    sock = key.fileobj
+                    if mask & selectors.EVENT_WRITE and sock is self.right and sent < len(outgoing):
+                        try:
+                            sent += self.right.send(outgoing[sent:])
+                        except BlockingIOError:
+                            pass
+                        except OSError as exc:
+                            raise WorkloadError(f"allreduce send failed: {exc.strerror or exc}") from None
+                        if sent == len(outgoing):
+                            if self.right is self.left:
+                                sel.modify(self.right, selectors.EVENT_READ)
+                            else:
+                                sel.unregister(self.right)
+                    if mask & selectors.EVENT_READ and sock is self.left and received < len(incoming):
+                        try:
+                            got = self.left.recv_into(memoryview(incoming)[received:])
+                        except BlockingIOError:
+                            continue
+                        except OSError as exc:
+                            raise WorkloadError(f"allreduce receive failed: {exc.strerror or exc}") from None
+                        if got == 0:
+                            raise WorkloadError("a neighbour closed its connection during the allreduce")
+                        received += got
+                        if received >= CHUNK.size and received - got < CHUNK.size:
+                            magic, peer_step, nbytes = CHUNK.unpack_from(incoming)
+                            if magic != CHUNK_MAGIC or peer_step != step or nbytes != want:
+                                raise WorkloadError(f"the left neighbour sent step {peer_step} ({nbytes} bytes), "
+                                                    f"expected step {step} ({want} bytes)")
+        finally:
+            for sock in {self.right, self.left}:
+                with contextlib.suppress(KeyError, ValueError):
+                    sel.unregister(sock)
+        return np.frombuffer(bytes(incoming[CHUNK.size:]), dtype=np.float64)
+
+    def close(self) -> None:
+        self._selector.close()
+
+
 # ---------------------------------------------------------------------------------------- the job
 
 def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) -> WorkloadResult:
     """Run the job for ``config.steps`` steps. ``listener`` may be a socket already bound to this rank's
     address (tests bind port 0 to avoid races). Raises ``ConnectError`` / ``WorkloadError``."""
     world = len(config.peers)
+    if config.collective:
+        return _run_collective(config, listener)
     names = [f"layer.{i:02d}" for i in range(config.layers)]
     sizes = halo_sizes(config.exchange_bytes, config.layers, config.seed)
     slab = Slab(config.rank, config.layers, config.seed)
@@ -402,5 +498,46 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
                 if ring.links:
                     for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
                         slab.absorb(halo)
+            probe.end_step()
+    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)
+
+
+GRAD_LAYER = "grad.allreduce"
+
+
+def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> WorkloadResult:
+    """The job that only uses collectives: layers compute, then the step's gradient is allreduced."""
+    world = len(config.peers)
+    names = [f"layer.{i:02d}" for i in range(config.layers)]
+    slab = Slab(config.rank, config.layers, config.seed)
+    reps = slab.reps_for(config.compute_ms)
+    grad = np.zeros(max(world, config.exchange_bytes // 8))
+    with contextlib.ExitStack() as cleanup:
+        ctx = zmq.Context()
+        cleanup.callback(ctx.term)
+        try:
+            probe = Probe(config.rank, world, config.node, config.collector, layers=[*names, GRAD_LAYER],
+                          job="ring-allreduce", context=ctx, curve_keys=config.curve_keys, spool=config.spool)
+        except zmq.ZMQError as exc:
+            raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
+        except OSError as exc:
+            raise ConnectError(f"cannot write the spool {config.spool}: {exc.strerror}") from None
+        except NotARecording as exc:
+            raise ConnectError(str(exc)) from None
+        cleanup.callback(probe.close)
+        ring = RingAllreduce(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
+                             config.rank, world, config.connect_timeout_s)
+        cleanup.callback(ring.close)
+        for link in (ring.left, ring.right):
+            if link is not None:
+                cleanup.callback(link.close)
+        for step in range(config.steps):
+            for layer, name in enumerate(names):
+                with probe.compute(name):
+                    slab.compute(layer, reps)
+            grad[:] = np.resize(slab.x.ravel(), len(grad))
+            with probe.exchange(GRAD_LAYER, op=wire.Op.ALLREDUCE, group=world, nbytes=grad.nbytes):
+                ring.allreduce(grad, step)
+            slab.x[0] = grad[: SLAB] / world  # the next step depends on everyone's gradient
             probe.end_step()
     return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)

@@ -219,6 +219,7 @@ class Job:
     exchange_bytes: int = 262_144
     compute_ms: float = 5.0
     seed: int = 1
+    collective: bool = False  # only a ring allreduce per step (workload --collective)
 
 
 def collector_endpoint() -> str:
@@ -237,9 +238,22 @@ def start_ranks(cluster: NetnsCluster, job: Job, logdir: Path) -> list[subproces
     return [cluster.spawn(node, [sys.executable, "-m", "agent.cli", "workload", "--rank", str(rank), "--peers", peers,
                                  "--collector", collector_endpoint(), "--node", node, "--steps", str(job.steps),
                                  "--layers", str(job.layers), "--exchange-bytes", str(job.exchange_bytes),
-                                 "--compute-ms", str(job.compute_ms), "--seed", str(job.seed)],
+                                 "--compute-ms", str(job.compute_ms), "--seed", str(job.seed),
+                                 *(["--collective"] if job.collective else [])],
                           logdir / f"{node}.log")
             for rank, node in enumerate(cluster.nodes)]
+
+
+def start_daemons(cluster: NetnsCluster, logdir: Path, cluster_file: Path | None = None,
+                  pair_checks: bool = True) -> list[subprocess.Popen[bytes]]:
+    """One node daemon per node (``watchtower-agent run``), with pair checks unless told otherwise; each
+    finds the others through the collector. ``cluster_file`` gives the nominal rates and the budget."""
+    return [cluster.spawn(node, [sys.executable, "-m", "agent.cli", "run", "--collector", collector_endpoint(),
+                                 "--node", node, "--local", f"ipc://{logdir / (node + '.ipc')}",
+                                 *(["--pair-checks"] if pair_checks else []),
+                                 *(["--cluster", str(cluster_file)] if cluster_file else [])],
+                          logdir / f"{node}-daemon.log")
+            for node in cluster.nodes]
 
 
 def recorded_steps(recording: Path) -> dict[int, int]:

@@ -28,6 +28,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
 from watchtower.attach import Beacon
+from watchtower.checkdir import CheckDirectory
 from watchtower.ingest import Ingest
 from watchtower.keys import AllowList, HeadKeys
 from watchtower.recording import Recorder
@@ -115,6 +116,7 @@ class Collector:
         self.on_message = on_message
         self.sender = secrets.randbits(63)
         self._seq = 0
+        self.check_directory = CheckDirectory(ingest.store, self.sender)
         self._ctx = context or zmq.Context.instance()
         self.socket = self._ctx.socket(zmq.ROUTER)
         self.socket.setsockopt(zmq.LINGER, 0)
@@ -167,6 +169,8 @@ class Collector:
             batch.append((received_ns, frames))
             if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
                 self._answer_ping(envelope, frames, received_ns)
+            elif frames and wire.peek_kind(frames[0]) == wire.Kind.CHECK_HELLO:
+                self._answer_hello(envelope, frames, received_ns)
         if self.recorder is not None:
             self.recorder.write_many(batch)
         for received_ns, frames in batch:
@@ -186,6 +190,19 @@ class Collector:
         self._seq += 1
         with contextlib.suppress(zmq.Again):  # the agent pings again later; never block on an agent
             self.socket.send_multipart([*envelope, *pong], flags=zmq.NOBLOCK)
+
+    def _answer_hello(self, envelope: list[bytes], frames: list[bytes], now_ns: int) -> None:
+        """A daemon running pair checks: tell it where the others' listeners are (never blocking)."""
+        try:
+            hello = wire.decode(frames)
+        except wire.WireError:
+            return  # counted when the batch is ingested
+        if not isinstance(hello, wire.CheckHello):
+            return
+        reply = self.check_directory.answer(hello, now_ns, self._seq)
+        self._seq += 1
+        with contextlib.suppress(zmq.Again):
+            self.socket.send_multipart([*envelope, *reply], flags=zmq.NOBLOCK)
 
     def run(self, stop: threading.Event, duration_s: float | None = None,
             beacon: Beacon | None = None, tick: Callable[[], None] | None = None) -> None:

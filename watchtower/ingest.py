@@ -30,7 +30,7 @@ class Ingest:
             self.ledger.reject(exc.reason)
             return None
         header = message.header
-        if header.kind is wire.Kind.CLOCK_PONG:  # only the collector sends these
+        if header.kind in (wire.Kind.CLOCK_PONG, wire.Kind.CHECK_PEERS):  # only the collector sends these
             self.ledger.reject("unexpected-kind")
             return None
         if not self.ledger.accept(header.sender, header.seq):
@@ -48,6 +48,8 @@ class Ingest:
                 self.ledger.reject("unknown-schema")
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
+        elif isinstance(message, wire.CheckResults) and not self.store.add_checks(message, received_ns):
+            self.ledger.reject("unknown-schema")
         return message
 
     def feed_all(self, records: Iterable[tuple[int, list[bytes]]]) -> int:

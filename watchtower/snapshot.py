@@ -52,8 +52,9 @@ def build_snapshot(
     history = store.window()  # every step still held, for degradation; the figures cover its newest steps
     window = history if window_steps is None else history.last(window_steps)
     series = store.series()
+    checks = store.checks()
     snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes),
-                                        history=history))
+                                        history=history, checks=checks))
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)
@@ -99,6 +100,9 @@ def build_snapshot(
         "loss": ingest.ledger.as_json(),
         "security": security or {"mode": "loopback", "warning": None},
         "replay": replay,
+        "checks": None if not len(checks) else {
+            "results": len(checks), "period_s": _f(checks.period_s), "budget": _f(checks.budget),
+            "deferred": checks.deferred},
         "run_totals": {"layers": [
             {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
             for i, name in enumerate(store.layers)

@@ -13,11 +13,13 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from agent import wire
+from watchtower.analysis.checks import Checks
 from watchtower.analysis.window import Collectives, RunSeries, Transfers, Window
 
 NS = 1e-9
 DEFAULT_MAX_CELLS = 1 << 24  # rank x layer x step cells kept in full detail (two float64 arrays)
 SERIES_CAP = 1 << 16  # per-step series entries before pairs of old entries are merged
+CHECKS_CAP = 1 << 16  # pair-check results kept (the analysis fits only each pair's newest few)
 
 
 @dataclass
@@ -86,6 +88,10 @@ class Store:
         self._series_step: dict[int, float] = {}
         self._series_links: dict[int, dict[tuple[int, int], list[float]]] = {}
         self._pairs: dict[tuple[int, int], int] = {}
+        # pair checks: result tables (int64 [5, K]: src, dst, nbytes, elapsed_ns, step), newest last
+        self._checks: list[np.ndarray] = []
+        self._check_rows = 0
+        self._check_state: dict[int, tuple[float, float, int]] = {}  # node -> (period_s, budget, deferred)
 
     # ------------------------------------------------------------------------------ registration
     def _node(self, name: str) -> int:
@@ -156,6 +162,49 @@ class Store:
         info.nics, info.nic_values = message.nics, np.array(message.nic_values)
         info.last_heard_ns = received_ns
         return True
+
+    def add_checks(self, message: wire.CheckResults, received_ns: int) -> bool:
+        """Keep a daemon's pair-check results (link records of their own kind). False when its sender's
+        schema is unknown (the source node is what the daemon's schema names)."""
+        src = self._sender_node.get(message.header.sender)
+        if src is None:
+            return False
+        self.nodes[src].last_heard_ns = received_ns
+        self._check_state[src] = (message.period_s, message.budget, message.deferred_total)
+        table = message.results
+        if not table.shape[1]:
+            return True
+        dst = np.array([self._node(name) for name in message.peers], np.int64)[table[wire.C_PEER]]
+        rows = np.empty((5, table.shape[1]), np.int64)
+        rows[0], rows[1] = src, dst
+        rows[2], rows[3] = table[wire.C_NBYTES], table[wire.C_ELAPSED]
+        rows[4] = self.last_step
+        self._checks.append(rows)
+        self._check_rows += rows.shape[1]
+        while self._check_rows > CHECKS_CAP and len(self._checks) > 1:
+            self._check_rows -= self._checks.pop(0).shape[1]
+        return True
+
+    def recent_link_rates(self, steps: int = 8) -> dict[tuple[str, str], float]:
+        """Each node pair's job throughput (bytes / transfer time) over the newest ``steps`` steps that have
+        any: what the job's own timings say of a link, for choosing what the pair checks look at first."""
+        totals: dict[tuple[int, int], list[float]] = {}
+        for step in sorted(self._series_links)[-steps:]:
+            for pair, (nbytes, seconds, _) in self._series_links[step].items():
+                cell = totals.setdefault(pair, [0.0, 0.0])
+                cell[0] += nbytes
+                cell[1] += seconds
+        return {(self.nodes[s].name, self.nodes[d].name): b / t for (s, d), (b, t) in totals.items() if t > 0}
+
+    def checks(self) -> Checks:
+        """Every pair-check result still held, oldest first."""
+        if not self._checks:
+            return Checks.empty()
+        t = np.hstack(self._checks)
+        states = list(self._check_state.values())
+        return Checks(t[0].astype(np.int32), t[1].astype(np.int32), t[2], t[3] * NS, t[4],
+                      period_s=max(p for p, _, _ in states), budget=max(b for _, b, _ in states),
+                      deferred=sum(d for _, _, d in states))
 
     def add_step(self, message: wire.Step, received_ns: int) -> bool:
         """Fold one rank's step in. False when its sender's schema is unknown or does not match."""

@@ -11,7 +11,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from netns_cluster import Job, NetnsCluster, start_collector, start_ranks, stop
+from netns_cluster import Job, NetnsCluster, start_collector, start_daemons, start_ranks, stop
 
 JOB_TIMEOUT_S = 120.0  # the runs take 20-30 s; a hung rank must not hang the suite
 REPORT_TIMEOUT_S = 60.0
@@ -40,13 +40,17 @@ def _tail(path: Path, lines: int = 5) -> str:
 
 
 def run_job(cluster: NetnsCluster, job: Job, workdir: Path,
-            during: Callable[[Path], None] | None = None) -> Path:
+            during: Callable[[Path], None] | None = None, *, daemons: Path | None = None,
+            pair_checks: bool = True) -> Path:
     """Collector in the hub, one rank per node; ``during(recording)`` runs while the ranks do (it must
-    poll with a deadline). Returns the closed recording."""
+    poll with a deadline). With ``daemons`` (a cluster file) a node daemon runs on every node too, with
+    pair checks unless ``pair_checks`` is False, and is stopped after the ranks. Returns the closed
+    recording."""
     workdir.mkdir(parents=True, exist_ok=True)
     recording = workdir / "run.wtrace"
     collector = start_collector(cluster, recording, workdir / "collector.log")
     started = time.monotonic()
+    node_daemons = [] if daemons is None else start_daemons(cluster, workdir, daemons, pair_checks)
     ranks = start_ranks(cluster, job, workdir)
     if during is not None:
         try:
@@ -62,6 +66,9 @@ def run_job(cluster: NetnsCluster, job: Job, workdir: Path,
             raise AssertionError(f"{node} did not finish in {JOB_TIMEOUT_S:g} s:\n"
                                  f"{_tail(workdir / f'{node}.log')}") from None
         assert status == 0, f"{node} exited with {status}:\n{_tail(workdir / f'{node}.log')}"
+    for node, daemon in zip(cluster.nodes, node_daemons, strict=True):
+        status = stop(daemon, signal.SIGTERM)  # it sends its last results and leaves
+        assert status == 0, f"{node}'s daemon exited with {status}:\n{_tail(workdir / f'{node}-daemon.log')}"
     status = stop(collector, signal.SIGINT)  # the ranks flushed their frames before exiting
     assert status == 0, f"collector exited with {status}:\n{_tail(workdir / 'collector.log')}"
     return recording

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from watchtower.analysis.checks import Checks, fit_checks
 from watchtower.analysis.efficiency import FAR_BELOW_PEERS, OUTLIER_Z, RELATIVE_JITTER
 from watchtower.analysis.robust import fit_hockney, modified_z
 from watchtower.analysis.sharing import bottleneck_share
@@ -63,10 +64,13 @@ class LinkStats:
     latency_clamped: bool = False
     port: str | None = None  # "<node> out" | "<node> in"
     unexplained: bool = False
+    measured_by: str = "job"  # "job": the job's own transfers; "check": the node daemons' pair checks
+    check_every_s: float | None = None  # for checked links, the period within which every pair is checked
 
 
 def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
-               slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
+               slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z,
+               checks: Checks | None = None) -> tuple[LinkStats, ...]:
     """All directed node pairs that carried traffic in the window, network links first, then local ones.
 
     β is fitted on each transfer's time with its byte-moving part (the time less the raw fit's α) scaled
@@ -74,36 +78,63 @@ def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
     one port each took twice as long as the port needs for their bytes, so the fit sees the port's rate,
     not half of it. Latency is not shared, so α is left alone. Transfers between ranks of one node share
     no network port and are not corrected.
+
+    Network pairs the job's own transfers do not cover (all of them, for a job that only uses
+    collectives) come from the node daemons' pair ``checks`` when given (``measured_by`` "check"): they
+    are judged together with the job's links, by the same rules; they put no hours at stake (what the
+    job loses on a link it never addresses directly is not measured).
     """
-    tr = window.transfers
-    if len(tr) == 0 or len(window.ranks) == 0:
-        return ()
-    paired = _pair_transfers(window, cluster)
-    known, di, step_idx = paired.known, paired.dst_index, paired.step_index
-    link, pairs, n_links = paired.link, paired.pairs, len(paired.pairs)
-    secs, nbytes, unshared = paired.seconds, paired.nbytes, paired.unshared
     n_nodes, names = len(window.nodes), window.nodes
-    fitted = paired.fitted
-    fit_link, fit_bytes, fit_unshared = link[fitted], nbytes[fitted], unshared[fitted]
-    fit = fit_hockney(fit_link, fit_bytes, fit_unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
-    # Where the probe split waiting off (the peer's readiness was known), what is left is two-sided noise
-    # and the odd late receiver: the bins' medians fit it without the low quartile's optimism. Where waits
-    # are unknown, waiting dominates the upper part of each bin and the low quartile is the safer choice.
-    waits_known = np.bincount(fit_link, weights=np.isfinite(tr.wait_s[known][fitted]), minlength=n_links) >= \
-        0.5 * np.bincount(fit_link, minlength=n_links)
-    if waits_known.any():
-        fit = fit.where(waits_known, fit_hockney(fit_link, fit_bytes, fit_unshared, n_links,
-                                                 quantile=WAITS_KNOWN_QUANTILE))
-    total_bytes = np.bincount(link, weights=nbytes, minlength=n_links)
-    busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_links)
-    count = np.bincount(link, minlength=n_links)
+    tr = window.transfers
+    job = len(tr) > 0 and len(window.ranks) > 0
+    if job:
+        paired = _pair_transfers(window, cluster)
+        link, pairs, n_job = paired.link, paired.pairs, len(paired.pairs)
+        fitted = paired.fitted
+        fit_link, fit_bytes, fit_unshared = link[fitted], paired.nbytes[fitted], paired.unshared[fitted]
+        fit = fit_hockney(fit_link, fit_bytes, fit_unshared, n_job, quantile=WAITS_UNKNOWN_QUANTILE)
+        # Where the probe split waiting off (the peer's readiness was known), what is left is two-sided noise
+        # and the odd late receiver: the bins' medians fit it without the low quartile's optimism. Where waits
+        # are unknown, waiting dominates the upper part of each bin and the low quartile is the safer choice.
+        known_waits = np.isfinite(tr.wait_s[paired.known][fitted])
+        waits_known = np.bincount(fit_link, weights=known_waits, minlength=n_job) >= \
+            0.5 * np.bincount(fit_link, minlength=n_job)
+        if waits_known.any():
+            fit = fit.where(waits_known, fit_hockney(fit_link, fit_bytes, fit_unshared, n_job,
+                                                     quantile=WAITS_KNOWN_QUANTILE))
+        secs, nbytes = paired.seconds, paired.nbytes
+        alpha, beta, sizes, clamped = fit.alpha_s, fit.beta_Bps, fit.sizes, fit.clamped
+        total_bytes = np.bincount(link, weights=nbytes, minlength=n_job)
+        busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_job)
+        count = np.bincount(link, minlength=n_job)
+    else:
+        pairs, n_job = np.empty(0, np.int64), 0
+        alpha = beta = total_bytes = busy = np.empty(0)
+        sizes = count = np.empty(0, np.int64)
+        clamped = np.empty(0, bool)
+    period = None
+    if checks is not None and len(checks):
+        fits = fit_checks(checks, n_nodes)
+        new = ~np.isin(fits.pairs, pairs)
+        pairs = np.concatenate([pairs, fits.pairs[new]])
+        alpha = np.concatenate([alpha, fits.fit.alpha_s[new]])
+        beta = np.concatenate([beta, fits.fit.beta_Bps[new]])
+        sizes = np.concatenate([sizes, fits.fit.sizes[new]])
+        clamped = np.concatenate([clamped, fits.fit.clamped[new]])
+        total_bytes = np.concatenate([total_bytes, fits.bytes[new]])
+        busy = np.concatenate([busy, fits.busy_s[new]])
+        count = np.concatenate([count, fits.count[new]])
+        period = checks.period_s if np.isfinite(checks.period_s) else None
+    n_links = len(pairs)
+    if n_links == 0:
+        return ()
+    by_check = np.arange(n_links) >= n_job
     src, dst = pairs // n_nodes, pairs % n_nodes
     local = src == dst
     classes = [cluster.link_class(names[s], names[d]) for s, d in zip(src, dst, strict=True)]
     nominal = [None if lo else cluster.link_nominal_Bps(names[s], names[d])
                for s, d, lo in zip(src, dst, local, strict=True)]
 
-    beta = fit.beta_Bps
     score = np.full(n_links, np.nan)
     median_beta = np.full(n_links, np.nan)
     for cls in set(classes):
@@ -121,27 +152,34 @@ def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
     # Only a true two-point fit gives an asymptotic β comparable with a NIC rate; the effective rate of one
     # small message size is mostly latency and would always look "below nominal".
     nominal_arr = np.array([np.nan if v is None else v for v in nominal], dtype=np.float64)
-    below = (fit.sizes >= 2) & (beta < slow_fraction * nominal_arr)
+    below = (sizes >= 2) & (beta < slow_fraction * nominal_arr)
 
     # Every network link's possible saving: a link found slow later (through the port that limits it) needs
-    # it too; only slow links' hours are added up as at stake.
+    # it too; only slow links' hours are added up as at stake. Checks are not the job's time: no saving.
     shrink = _shrink(beta, median_beta, local)
-    saving = _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps), len(window.ranks))
+    saving = np.zeros(n_links)
+    if job:
+        saving[:n_job] = _saving_per_step(link, paired.step_index, paired.dst_index, secs, shrink[:n_job],
+                                          len(window.steps), len(window.ranks))
     with np.errstate(invalid="ignore", divide="ignore"):
         throughput = np.where(busy > 0, total_bytes / busy, np.nan)
     out = []
     for i in np.argsort(local, kind="stable"):
         nom = nominal[i]
         reason = ", ".join(r for r, hit in (("outlier", outlier[i]), ("below-nominal", below[i])) if hit)
+        checked = bool(by_check[i])
         out.append(LinkStats(
             src=int(src[i]), dst=int(dst[i]), src_name=names[src[i]], dst_name=names[dst[i]],
             link_class=classes[i], local=bool(local[i]), bytes=int(total_bytes[i]), transfers=int(count[i]),
-            busy_s=float(busy[i]), latency_s=float(fit.alpha_s[i]), bandwidth_Bps=float(beta[i]),
-            throughput_Bps=throughput[i], nominal_Bps=nom,
-            of_nominal=None if nom is None or not np.isfinite(throughput[i]) else float(throughput[i] / nom),
+            busy_s=float(busy[i]), latency_s=float(alpha[i]), bandwidth_Bps=float(beta[i]),
+            throughput_Bps=float(throughput[i]), nominal_Bps=nom,
+            of_nominal=None if nom is None or checked or not np.isfinite(throughput[i])
+            else float(throughput[i] / nom),
             score=float(score[i]), slow=bool(reason), reason=reason, saving_per_step_s=float(saving[i]),
-            hours_at_stake=None if remaining_steps is None else remaining_steps * float(saving[i]) / 3600.0,
-            latency_clamped=bool(fit.clamped[i]),
+            hours_at_stake=None if remaining_steps is None or checked
+            else remaining_steps * float(saving[i]) / 3600.0,
+            latency_clamped=bool(clamped[i]),
+            measured_by="check" if checked else "job", check_every_s=period if checked else None,
         ))
     return tuple(out)
 

@@ -8,12 +8,13 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, layer_stats, reduce_window
+from watchtower.analysis.checks import Checks, check_rate_series
 from watchtower.analysis.cusum import WARMUP, Alert, degradation_alerts
 from watchtower.analysis.efficiency import (
     Efficiency,
@@ -76,7 +77,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             warmup: int = WARMUP, recent: int = RECENT_STEPS, runs: Sequence[tuple[int, float]] = (),
             scenarios: Sequence[tuple[str, float, float, float]] = (
                 ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
-            nic_Bps: np.ndarray | None = None, history: Window | None = None) -> Analysis:
+            nic_Bps: np.ndarray | None = None, history: Window | None = None,
+            checks: Checks | None = None) -> Analysis:
     """Analyse a window (and the run's series, when there is one) against the cluster's configuration.
 
     ``runs`` are (p, S) of earlier runs at other sizes, for the Karp–Flatt serial fraction; this window's
@@ -84,7 +86,9 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     (label, bandwidth ×, latency ÷, ranks ×) what-ifs. ``nic_Bps`` (float64 [N, 2], NaN: unknown) is each
     window node's NIC-counter rate out and in, the second witness of port capacity. ``history`` is every
     step the caller still holds in full: when given, link degradation is watched on its transfers with the
-    port sharing taken out (``links.link_rate_series``), else on ``series``.
+    port sharing taken out (``links.link_rate_series``), else on ``series``. ``checks`` are the node
+    daemons' pair checks: they measure the network links the job's own transfers do not (``link_stats``),
+    and those links' check rates are watched for degradation like the job's.
     """
     sums = reduce_window(window)
     eff = pop_efficiency(window, sums)
@@ -99,10 +103,18 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         recent_step_s = _nanmean(sums.step_wall_s[-recent:])
     remaining = remaining_steps(cluster.total_steps, last_step)
 
-    links = link_stats(window, cluster, remaining, slow_fraction=slow_fraction)
+    links = link_stats(window, cluster, remaining, slow_fraction=slow_fraction, checks=checks)
     ports, links = port_stats(links, window.nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
     link_rates = None if history is None else link_rate_series(history, cluster)
     alerts = degradation_alerts(series, window.nodes, links=link_rates, warmup=warmup) if series is not None else ()
+    checked = {(lk.src, lk.dst) for lk in links if lk.measured_by == "check"}
+    if checked and checks is not None:
+        rates = check_rate_series(checks)
+        keep = [j for j, pair in enumerate(rates.links) if pair in checked]
+        rates = replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
+                        link_transfer_s=rates.link_transfer_s[:, keep],
+                        link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
+        alerts = (*alerts, *degradation_alerts(rates, window.nodes, warmup=warmup))
     net = [lk for lk in links if not lk.local]
     at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in net if lk.slow)
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
@@ -179,6 +191,11 @@ HOW: dict[str, tuple[str, str]] = {
     "links.port": ("the slow port at either end that limits a slow link (link β ≥ 75 % of the port's capacity), "
                    "the slower if both; null with unexplained = true when no slow port does (the path "
                    "between them, a blocking switch, or the pair itself)", "definition; 75 %: no source"),
+    "links.measured_by": ("\"job\": fitted on the job's own point-to-point transfers; \"check\": on the node "
+                          "daemons' pair checks (one small and one large message per check, timed until "
+                          "acknowledged, so α is a round trip), for network pairs the job's transfers do not "
+                          "cover; judged by the same rules, no hours at stake; check_every_s: the period within "
+                          "which every ordered pair is checked", "definition; Hockney (1994)"),
     "links.latency_s": ("α of t(n) = α + n/β (none when only one message size was seen); latency_clamped when "
                         "the fitted line crossed zero below the origin: α is then too small to tell from timer "
                         "noise and is taken as 0, not measured as 0", "Hockney (1994)"),
@@ -302,7 +319,8 @@ def _link_json(lk: LinkStats) -> dict[str, Any]:
             "latency_clamped": lk.latency_clamped, "throughput_Bps": _f(lk.throughput_Bps),
             "nominal_Bps": _f(lk.nominal_Bps), "of_nominal": _f(lk.of_nominal), "slow": lk.slow, "reason": lk.reason,
             "score": _f(lk.score),
-            "hours_at_stake": _f(lk.hours_at_stake), "port": lk.port, "unexplained": lk.unexplained}
+            "hours_at_stake": _f(lk.hours_at_stake), "port": lk.port, "unexplained": lk.unexplained,
+            "measured_by": lk.measured_by, "check_every_s": _f(lk.check_every_s)}
 
 
 def compare(a: Analysis | dict[str, Any], b: Analysis | dict[str, Any]) -> dict[str, Any]:

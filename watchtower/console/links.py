@@ -20,6 +20,17 @@ CLAMPED = "clamped"
 """Shown for α when the fit's intercept came out below zero and α was taken as 0."""
 UNEXPLAINED = "path?"
 """Port cell of a slow link no slow port explains (the path between the ends, or the pair itself)."""
+CHECK_MARK = "chk"
+"""In the "%nom" column of a link measured by the node daemons' pair checks (the job sends nothing over it)."""
+
+
+def checked_label(link: Record) -> str:
+    """"measured by check every N s" for a link the pair checks measured, else ""."""
+    if link.get("measured_by") != "check":
+        return ""
+    every = link.get("check_every_s")
+    return "measured by check" + ("" if every is None else f" every {every:.0f} s")
+
 
 SORT_KEYS = (
     SortKey("score", lambda r: r["score"], descending=False, how=("links.score", "links.slow")),
@@ -122,7 +133,8 @@ class LinksView(TableView):
             link_name(link, self._short),
             port,
             Text(fmt.rate(link["bandwidth_Bps"]), bad if slow else "", justify="right"),
-            Text(fmt.percent(link["of_nominal"]), justify="right"),
+            Text(CHECK_MARK if link.get("measured_by") == "check" else fmt.percent(link["of_nominal"]),
+                 justify="right"),
             Text(fmt.hours(link["hours_at_stake"]), justify="right"),
             Text(fmt.number(link["score"]), justify="right"),
             Text(latency(link), self.paint("quiet") if link.get("latency_clamped") else "", justify="right"),
@@ -136,13 +148,16 @@ class LinksView(TableView):
     def _retitle(self) -> None:
         table = self.table
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
-        slow = sum(1 for link in self.snapshot["links"] if link["slow"]) if self.snapshot else 0
+        links = self.snapshot["links"] if self.snapshot else []
+        slow = sum(1 for link in links if link["slow"])
+        checked = next((label for link in links if (label := checked_label(link))), "")
         hidden = table.hidden_columns
         title = Text.assemble(
             (fmt.counted(table.shown_records, "link"), self.paint("title")),
             f" by {table.sort_key.label} {arrow} · ",
             (SLOW_MARK, self.paint("bad")),
             f" {slow} slow",
+            f" ({CHECK_MARK}: {checked})" if checked else "",
         )
         if "%nom" not in hidden:
             title.append(" · %nom = throughput ÷ nominal")
@@ -177,5 +192,6 @@ class LinksView(TableView):
                 f" · {alpha} · score {fmt.number(link['score'])}",
                 f" · {fmt.hours(link['hours_at_stake'])} at stake · {fmt.counted(link['transfers'], 'transfer')},",
                 f" {fmt.size(link['bytes'])}",
+                f" · {label}" if (label := checked_label(link)) else "",
             )
         )
