@@ -16,6 +16,7 @@ import zmq
 from agent import wire
 from agent.daemon import CheckOptions, NodeDaemon
 from agent.nodestats import NicCounters, NodeSampler
+from tests.conftest import free_tcp_port
 from watchtower.collector import Collector
 from watchtower.ingest import Ingest
 
@@ -95,8 +96,6 @@ def test_daemons_find_each_other_through_the_collector_and_check_every_pair(
 
 def test_a_cluster_file_listing_replaces_the_collector(tmp_path: Path, endpoint: str,
                                                        zmq_context: zmq.Context) -> None:
-    from conftest import free_tcp_port
-
     nodes = ["f-a", "f-b"]
     listed = {node: f"127.0.0.1:{free_tcp_port()}" for node in nodes}
     collector = Collector(endpoint, Ingest(), context=zmq_context)
