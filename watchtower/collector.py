@@ -3,7 +3,9 @@
 Agents connect out with DEALER sockets and send ``[b"", header, ...]``; a relay in between adds its own
 routing frames in front, so everything up to the first empty frame is the return address. Frames are
 appended to the recording before they are interpreted, so a frame that our decoder later rejects is still
-kept (and counted the same way on replay).
+kept (and counted the same way on replay). The one exception is a message larger than any valid message
+(``agent.records.fits``): it is counted bad (``oversize-message``) and neither recorded nor ingested, so
+a recording never holds a record its readers would refuse.
 
 With keys (``watchtower.keys``) the socket is a CURVE server: traffic is encrypted, and a ZAP handler
 admits only agents whose public key is in the allow-list. A refused handshake never reaches the socket
@@ -27,6 +29,7 @@ from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
+from agent.records import fits
 from watchtower.attach import Beacon
 from watchtower.ingest import Ingest
 from watchtower.keys import AllowList, HeadKeys
@@ -164,6 +167,9 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
+            if not fits(frames):
+                self.ingest.ledger.reject("oversize-message")
+                continue
             batch.append((received_ns, frames))
             if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
                 self._answer_ping(envelope, frames, received_ns)

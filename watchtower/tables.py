@@ -72,7 +72,9 @@ def format_snapshot(s: dict[str, Any]) -> str:
         out += [f"  step {a['step_detected']} (began ~{a['step_began']}): {visible(a['message'])}"
                 for a in s["alerts"]]
     recording = s.get("recording")
-    if recording and not recording["complete"]:
+    if recording and recording.get("skipped_bytes"):
+        out += ["", f"recording damaged: {recording['skipped_bytes']} bytes stepped over, intact records kept"]
+    if recording and recording["torn_at"] is not None:
         out += ["", f"recording stopped at byte {recording['torn_at']}: {recording['reason']}"]
     return "\n".join(out)
 
