@@ -22,6 +22,7 @@ counted in ``RecordWriter.refused``; the collector counts it bad (``oversize-mes
 
 from __future__ import annotations
 
+import itertools
 import json
 import struct
 import time
@@ -75,6 +76,15 @@ def decode_resume(blob: bytes, at: int) -> bool:
     return escape == RESUME_ESCAPE and magic == RESUME_MAGIC and where == at and zlib.crc32(blob[:-4]) == crc
 
 
+class WriteFailed(OSError):
+    """A write to the file failed (``__cause__`` is the OS error): ``written`` bytes of the batch reached the
+    file, holding ``whole`` complete records; ``lost`` records of the batch are not in it."""
+
+    def __init__(self, written: int, whole: int, lost: int) -> None:
+        super().__init__(f"write failed after {written} bytes")
+        self.written, self.whole, self.lost = written, whole, lost
+
+
 class NotARecording(ValueError):
     """Appending would damage a file that is not a recording (the message is one line for the user)."""
 
@@ -118,12 +128,28 @@ class RecordWriter:
 
     def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
         """Append several records with one write call (what a collector drains at once); a message that
-        does not ``fit`` is left out and counted in ``refused``."""
+        does not ``fit`` is left out and counted in ``refused``. A failed write raises ``WriteFailed``
+        saying how many of the batch's records reached the file whole."""
         blobs = [encode_record(t, frames) for t, frames in batch if fits(frames)]
         self.refused += len(batch) - len(blobs)
         if blobs:
-            self._file.write(b"".join(blobs))
-            self.records += len(blobs)
+            done, error = self._write(b"".join(blobs))
+            whole = sum(1 for end in itertools.accumulate(map(len, blobs)) if end <= done)
+            self.records += whole
+            if error is not None:
+                raise WriteFailed(done, whole, len(blobs) - whole) from error
+
+    def _write(self, blob: bytes) -> tuple[int, OSError | None]:
+        """Write all of ``blob``; a short write is retried (the retry reports the real error, e.g. ENOSPC).
+        Returns the bytes that reached the file and the error that stopped it, if any."""
+        view, done = memoryview(blob), 0
+        try:
+            while done < len(blob):
+                n = self._file.write(view[done:])
+                done += len(blob) - done if n is None else n
+        except OSError as exc:
+            return done, exc
+        return done, None
 
     def close(self) -> None:
         self._file.close()

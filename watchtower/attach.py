@@ -74,6 +74,13 @@ class RunningCollector:
     listen: str
     security: dict[str, Any]
     started: float
+    socket: Path
+    job: str = ""
+    recorder: dict[str, Any] | None = None
+
+    def ask(self, context: zmq.Context | None = None) -> dict[str, Any] | None:
+        """The collector's answer now (None when it does not answer): e.g. its recorder's state."""
+        return _ask(context or zmq.Context.instance(), self.socket)
 
 
 def find_collectors(folder: Path | None = None, context: zmq.Context | None = None) -> list[RunningCollector]:
@@ -89,7 +96,8 @@ def find_collectors(folder: Path | None = None, context: zmq.Context | None = No
             continue
         try:
             found.append(RunningCollector(int(info["pid"]), Path(info["recording"]), str(info["listen"]),
-                                          dict(info["security"]), float(info["started"])))
+                                          dict(info["security"]), float(info["started"]), path,
+                                          str(info.get("job") or ""), info.get("recorder")))
         except (KeyError, TypeError, ValueError):
             continue  # not one of ours, or another version: leave it alone
     return sorted(found, key=lambda c: -c.started)

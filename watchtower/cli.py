@@ -243,6 +243,7 @@ def _watch(args: argparse.Namespace) -> int:
         return _run_console(feed, metrics)
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
+    ask = None
     if args.follow is not None:
         recording, security = args.follow, None
     else:
@@ -250,9 +251,9 @@ def _watch(args: argparse.Namespace) -> int:
         if not running:
             raise UsageError(f"no running 'watchtower collect' found (looked in {run_dir()}); start one, "
                              "or give --listen or --follow")
-        recording, security = running[0].recording, running[0].security
+        recording, security, ask = running[0].recording, running[0].security, running[0].ask
     try:
-        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window)
+        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window, ask=ask)
     except OSError as exc:
         raise UsageError(f"cannot follow {recording}: {exc.strerror}") from None
     except RecordingError as exc:
@@ -313,7 +314,7 @@ def _collect(args: argparse.Namespace) -> int:
         signal.signal(signum, lambda *_: stop.set())
     tick = None
     if metrics is not None:
-        tick = _snapshot_tick(ingest, collector.bound, security, metrics)
+        tick = _snapshot_tick(ingest, collector.bound, security, metrics, recorder)
         print(f"{PROG} collect: metrics on {metrics.url}", file=sys.stderr, flush=True)
     try:
         collector.run(stop, args.duration, beacon, tick)
@@ -326,11 +327,15 @@ def _collect(args: argparse.Namespace) -> int:
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
           f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
           f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    if recorder.stops:
+        state = recorder.status()
+        print(f"{PROG} collect: {state['message'] or 'recording resumed'}; {recorder.stops} write failure(s), "
+              f"{recorder.unrecorded} messages received but not recorded (they count as missing on replay)")
     return 0
 
 
 def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
-                   metrics: MetricsServer) -> Callable[[], None]:
+                   metrics: MetricsServer, recorder: Recorder) -> Callable[[], None]:
     """For headless `collect`: a snapshot for the metrics every few seconds, built in the collector's loop."""
     from watchtower.metrics import COLLECT_PERIOD_S, Every
     from watchtower.snapshot import build_snapshot
@@ -339,7 +344,7 @@ def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
 
     def publish() -> None:
         metrics.metrics.update(build_snapshot(ingest, cluster, source={"kind": "live", "where": bound},
-                                              security=security))
+                                              security=security, recorder=recorder.status()))
 
     return Every(COLLECT_PERIOD_S, publish)
 

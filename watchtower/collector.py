@@ -208,6 +208,8 @@ class Collector:
                     break
                 timeout = max(1, min(timeout, int(left * 1000)))
             if beacon is not None:
+                if self.recorder is not None:
+                    beacon.info["recorder"] = self.recorder.status()
                 beacon.answer()
             self.drain(timeout)
             if tick is not None:

@@ -22,6 +22,7 @@ from watchtower.recording import RecordingError, RecordingReader, Tail, read_met
 from watchtower.snapshot import build_snapshot, cluster_for
 
 SNAPSHOT_PERIOD_S = 0.25
+ASK_PERIOD_S = 1.0  # how often an attached console asks its collector for what the file cannot say
 CONSOLE_WINDOW_STEPS = 120  # the console's figures cover the recent steps, so a change shows soon
 
 
@@ -39,10 +40,11 @@ class _Snapshots:
     def due(self) -> bool:
         return self.clock() - self._last >= self.period_s
 
-    def build(self, replay: dict[str, Any] | None = None) -> dict[str, Any]:
+    def build(self, replay: dict[str, Any] | None = None, recorder: dict[str, Any] | None = None) -> dict[str, Any]:
         self._last = self.clock()
         return build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
-                              security=self.security, window_steps=self.window_steps, replay=replay)
+                              security=self.security, window_steps=self.window_steps, replay=replay,
+                              recorder=recorder)
 
 
 class LiveFeed:
@@ -59,14 +61,18 @@ class LiveFeed:
                                      security, window_steps, period_s, clock)
 
     def start(self, deliver: Deliver) -> None:
-        deliver(self._snapshots.build())
+        deliver(self._snapshots.build(recorder=self._recorder()))
         try:
             while not self._stop.is_set():
                 self.collector.drain(50)
                 if self._snapshots.due():
-                    deliver(self._snapshots.build())
+                    deliver(self._snapshots.build(recorder=self._recorder()))
         finally:
             self.collector.close()
+
+    def _recorder(self) -> dict[str, Any] | None:
+        recorder = self.collector.recorder
+        return None if recorder is None else recorder.status()
 
     def stop(self) -> None:
         self._stop.set()
@@ -83,9 +89,12 @@ class AttachFeed:
 
     def __init__(self, recording: Path, *, security: dict[str, Any] | None, cluster: Cluster | None = None,
                  window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
-                 poll_s: float = 0.1, clock: Callable[[], float] = time.monotonic) -> None:
+                 poll_s: float = 0.1, clock: Callable[[], float] = time.monotonic,
+                 ask: Callable[[], dict[str, Any] | None] | None = None) -> None:
         self.recording = recording
         self.poll_s = poll_s
+        self._ask, self._asked, self._recorder = ask, -float("inf"), None
+        self.clock = clock
         self._stop = threading.Event()
         with open(recording, "rb") as stream:
             meta = read_meta(stream)
@@ -97,8 +106,18 @@ class AttachFeed:
     def start(self, deliver: Deliver) -> None:
         while not self._stop.is_set():
             self.catch_up()
-            deliver(self._snapshots.build())
+            deliver(self._snapshots.build(recorder=self._recorder_state()))
             self._stop.wait(max(self.poll_s, self._snapshots.period_s))
+
+    def _recorder_state(self) -> dict[str, Any] | None:
+        """The collector's recorder state (a full disk does not show in the file), asked at most once a
+        second; the last answer stands while the collector does not answer."""
+        if self._ask is not None and self.clock() - self._asked >= ASK_PERIOD_S:
+            self._asked = self.clock()
+            info = self._ask()
+            if info is not None:
+                self._recorder = info.get("recorder")
+        return self._recorder
 
     def catch_up(self) -> int:
         """Ingest every complete record appended since the last call; returns how many."""

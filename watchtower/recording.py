@@ -17,13 +17,17 @@ still being written) it stops, reporting the byte offset where the trouble start
 
 from __future__ import annotations
 
+import errno
 import gzip
+import io
 import json
+import os
+import time
 import zlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import BinaryIO
+from typing import Any, BinaryIO
 
 import numpy as np
 
@@ -38,8 +42,10 @@ from agent.records import (
     RESUME_ESCAPE,
     NotARecording,
     RecordWriter,
+    WriteFailed,
     decode_resume,
     encode_record,
+    encode_resume,
 )
 
 __all__ = ["PREAMBLE", "NotARecording", "Recorder", "RecordingError", "RecordingReader", "Skip", "Tail",
@@ -49,6 +55,7 @@ MAX_META = 1 << 20
 MAX_RECORD = 64 << 20  # far above any valid frame set (wire caps), far below a torn length field
 SCAN_CHUNK = 1 << 20  # bytes read at a time while searching for a place to go on after damage
 SYNC_WINDOW = RECORD.size + BODY.size  # bytes needed to tell whether a record could start at an offset
+RETRY_S = 1.0  # after a failed write, how often recording tries to go on
 RESUMED = "resumed"  # what _next answers for an intact resume marker
 
 
@@ -58,7 +65,67 @@ class RecordingError(ValueError):
 
 class Recorder(RecordWriter):
     """Appends records to a recording; writes the preamble first if the file or stream is empty, and a
-    resume marker first if it already holds data (a restart after a crash)."""
+    resume marker first if it already holds data (a restart after a crash).
+
+    A failed write (a full disk) is a state, not a crash: recording stops, ``status`` says where and why,
+    and messages that arrive meanwhile are counted in ``unrecorded`` (the collector goes on ingesting and
+    serving them). Every ``retry_s`` the next batch first tries a resume marker at the file's end; once it
+    is written (space came back) recording goes on after it, and a reader steps over any torn record the
+    failure left to that marker.
+    """
+
+    def __init__(self, target: str | Path | BinaryIO, meta: dict | None = None, *, retry_s: float = RETRY_S,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        super().__init__(target, meta)
+        self.retry_s, self.clock = retry_s, clock
+        self.unrecorded = 0  # messages that arrived while recording was stopped, or were lost in a failed write
+        self.stopped_at: int | None = None  # the file's size when a write failed
+        self.stop_reason = ""
+        self.stops = 0
+        self._retry_at = 0.0
+
+    def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
+        if self.stopped_at is not None and not self._resume():
+            self.unrecorded += len(batch)
+            return
+        try:
+            super().write_many(batch)
+        except WriteFailed as exc:
+            self.unrecorded += exc.lost
+            self._stop(exc.__cause__)
+
+    def _stop(self, error: BaseException | None) -> None:
+        self.stopped_at = self._size()
+        code = getattr(error, "errno", None)
+        self.stop_reason = "disk full" if code == errno.ENOSPC else (getattr(error, "strerror", None) or "write failed")
+        self.stops += 1
+        self._retry_at = self.clock() + self.retry_s
+
+    def _resume(self) -> bool:
+        """Try to go on recording: True once a resume marker is written at the file's end."""
+        if self.clock() < self._retry_at:
+            return False
+        at = self._size()
+        _, error = self._write(encode_resume(at, time.time_ns()))
+        if error is not None:
+            self._retry_at = self.clock() + self.retry_s
+            return False
+        self.stopped_at, self.stop_reason = None, ""
+        return True
+
+    def _size(self) -> int:
+        try:
+            return os.fstat(self._file.fileno()).st_size
+        except (OSError, ValueError, io.UnsupportedOperation):
+            return self._file.tell()
+
+    def status(self) -> dict[str, Any]:
+        """The recording's state for snapshots: ``recording`` or ``stopped`` (where, why), and the count of
+        messages not recorded."""
+        stopped = self.stopped_at is not None
+        return {"state": "stopped" if stopped else "recording", "stopped_at": self.stopped_at,
+                "reason": self.stop_reason or None, "unrecorded": self.unrecorded, "stops": self.stops,
+                "message": f"recording stopped: {self.stop_reason} at byte {self.stopped_at}" if stopped else None}
 
 
 @dataclass(frozen=True)

@@ -33,6 +33,7 @@ def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> d
                               meta=meta, window_steps=window)
     snapshot["recording"] = {"records": tail.records, "complete": tail.clean, "torn_at": tail.offset,
                              "reason": tail.reason or None, "skipped_bytes": tail.skipped_bytes,
+                             "resumes": tail.resumes,
                              "skipped": [{"start": s.start, "end": s.end, "reason": s.reason} for s in tail.skipped]}
     return snapshot
 

@@ -45,6 +45,7 @@ def build_snapshot(
     security: dict[str, Any] | None = None,
     window_steps: int | None = None,
     replay: dict[str, Any] | None = None,
+    recorder: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
     store = ingest.store
     meta = meta or {}
@@ -94,6 +95,7 @@ def build_snapshot(
         "loss": ingest.ledger.as_json(),
         "security": security or {"mode": "loopback", "warning": None},
         "replay": replay,
+        "recorder": recorder,
         "run_totals": {"layers": [
             {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
             for i, name in enumerate(store.layers)

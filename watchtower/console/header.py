@@ -16,7 +16,8 @@ SEPARATOR = " · "
 
 
 class JobHeader(Widget):
-    """Five lines of job-wide figures, plus a standing sixth line while the transport is insecure."""
+    """Five lines of job-wide figures, plus standing lines while the transport is insecure, recording has
+    stopped or ranks are silent."""
 
     COMPONENT_CLASSES: ClassVar[set[str]] = {
         "header--title",
@@ -47,6 +48,10 @@ class JobHeader(Widget):
         ]
         if snap["security"]["mode"] == "insecure":
             lines.append(self._insecure(snap, width))
+        recorder = snap.get("recorder")
+        if recorder and recorder["state"] == "stopped":
+            lines.append(self._alarm(f"{recorder['message']} · {fmt.count(recorder['unrecorded'])} messages not "
+                                     "recorded (still received and shown)", width))
         for line in lines:
             line.no_wrap = True
             line.overflow = "ellipsis"
@@ -140,6 +145,12 @@ class JobHeader(Widget):
     def _insecure(self, snap: Snapshot, width: int) -> Text:
         warning = snap["security"]["warning"] or "frames are accepted from anyone who can reach the port"
         line = Text.assemble("▲ INSECURE TRANSPORT: ", fmt.literal(warning), style=self._style("alarm"))
+        line.pad_right(max(0, width - line.cell_len))
+        return line
+
+    def _alarm(self, text: str, width: int) -> Text:
+        """A standing line for a state the operator must not miss (recording stopped, ranks silent)."""
+        line = Text.assemble("▲ ", fmt.literal(text), style=self._style("alarm"))
         line.pad_right(max(0, width - line.cell_len))
         return line
 
