@@ -11,6 +11,7 @@ import os
 import signal
 import sys
 import threading
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, NoReturn
@@ -344,7 +345,8 @@ def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
 
     def publish() -> None:
         metrics.metrics.update(build_snapshot(ingest, cluster, source={"kind": "live", "where": bound},
-                                              security=security, recorder=recorder.status()))
+                                              security=security, recorder=recorder.status(),
+                                              now_ns=time.time_ns()))
 
     return Every(COLLECT_PERIOD_S, publish)
 

@@ -5,7 +5,8 @@ routing frames in front, so everything up to the first empty frame is the return
 appended to the recording before they are interpreted, so a frame that our decoder later rejects is still
 kept (and counted the same way on replay). The one exception is a message larger than any valid message
 (``agent.records.fits``): it is counted bad (``oversize-message``) and neither recorded nor ingested, so
-a recording never holds a record its readers would refuse.
+a recording never holds a record its readers would refuse. Every second the collector also records an
+empty record, its clock tick: a recording then shows silence as time passing with nobody speaking.
 
 With keys (``watchtower.keys``) the socket is a CURVE server: traffic is encrypted, and a ZAP handler
 admits only agents whose public key is in the allow-list. A refused handshake never reaches the socket
@@ -35,6 +36,7 @@ from watchtower.ingest import Ingest
 from watchtower.keys import AllowList, HeadKeys
 from watchtower.recording import Recorder
 
+TICK_S = 1.0  # how often the collector records its clock, so silence shows in a recording as time passing
 MAX_MESSAGE_BYTES = 64 << 20  # ZeroMQ drops peers that send more in one message (wire caps are far lower)
 DRAIN_BATCH = 4096
 
@@ -117,6 +119,7 @@ class Collector:
         self.recorder = recorder
         self.on_message = on_message
         self.sender = secrets.randbits(63)
+        self._next_tick = time.monotonic() + TICK_S
         self._seq = 0
         self._ctx = context or zmq.Context.instance()
         self.socket = self._ctx.socket(zmq.ROUTER)
@@ -167,8 +170,8 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
-            if not fits(frames):
-                self.ingest.ledger.reject("oversize-message")
+            if not frames or not fits(frames):  # an empty message would read back as a clock tick
+                self.ingest.ledger.reject("empty" if not frames else "oversize-message")
                 continue
             batch.append((received_ns, frames))
             if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
@@ -212,8 +215,20 @@ class Collector:
                     beacon.info["recorder"] = self.recorder.status()
                 beacon.answer()
             self.drain(timeout)
+            self.tick()
             if tick is not None:
                 tick()
+
+    def tick(self) -> None:
+        """Every ``TICK_S``: record the clock (an empty record) and move the ingest's "now", so ages keep
+        growing in silence, in this process and in a recording."""
+        if time.monotonic() < self._next_tick:
+            return
+        self._next_tick = time.monotonic() + TICK_S
+        now = time.time_ns()
+        self.ingest.feed(now, [])
+        if self.recorder is not None:
+            self.recorder.write_many([(now, [])])
 
     def close(self) -> None:
         self._close_sockets()

@@ -31,8 +31,9 @@ class _Snapshots:
 
     def __init__(self, ingest: Ingest, cluster: Cluster | None, meta: dict, source: dict[str, str],
                  security: dict[str, Any] | None, window_steps: int | None, period_s: float,
-                 clock: Callable[[], float]) -> None:
+                 clock: Callable[[], float], wall: Callable[[], int] | None = None) -> None:
         self.ingest, self.meta, self.source, self.security = ingest, meta, source, security
+        self.wall = wall  # live sources: ages are measured against the wall clock, growing while nobody speaks
         self.cluster = cluster_for(meta, cluster)
         self.window_steps, self.period_s, self.clock = window_steps, period_s, clock
         self._last = -float("inf")
@@ -44,7 +45,7 @@ class _Snapshots:
         self._last = self.clock()
         return build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
                               security=self.security, window_steps=self.window_steps, replay=replay,
-                              recorder=recorder)
+                              recorder=recorder, now_ns=None if self.wall is None else self.wall())
 
 
 class LiveFeed:
@@ -58,13 +59,14 @@ class LiveFeed:
         self.collector = collector
         self._stop = threading.Event()
         self._snapshots = _Snapshots(collector.ingest, cluster, {}, {"kind": "live", "where": collector.bound},
-                                     security, window_steps, period_s, clock)
+                                     security, window_steps, period_s, clock, time.time_ns)
 
     def start(self, deliver: Deliver) -> None:
         deliver(self._snapshots.build(recorder=self._recorder()))
         try:
             while not self._stop.is_set():
                 self.collector.drain(50)
+                self.collector.tick()
                 if self._snapshots.due():
                     deliver(self._snapshots.build(recorder=self._recorder()))
         finally:
@@ -101,7 +103,7 @@ class AttachFeed:
             self._offset = stream.tell()
         self.ingest = Ingest()
         self._snapshots = _Snapshots(self.ingest, cluster, meta, {"kind": "attached", "where": str(recording)},
-                                     security, window_steps, period_s, clock)
+                                     security, window_steps, period_s, clock, time.time_ns)
 
     def start(self, deliver: Deliver) -> None:
         while not self._stop.is_set():

@@ -1,7 +1,9 @@
 """One path from raw frames to state, shared by the live collector and replay.
 
 ``Ingest.feed`` validates a message, accounts for it (sequence gaps, bad frames by reason) and folds it
-into the store. Live and replay differ only in where the frames come from.
+into the store. A record without frames is the collector's clock tick: it only moves the feed's "now", so
+a recording shows silence as time passing with nobody speaking. Live and replay differ only in where the
+frames come from.
 """
 
 from __future__ import annotations
@@ -24,6 +26,8 @@ class Ingest:
 
     def feed(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> wire.Message | None:
         self.last_received_ns = max(self.last_received_ns, received_ns)
+        if not frames:  # a collector's clock tick (see watchtower.collector): time passes, nobody spoke
+            return None
         try:
             message = wire.decode(frames)
         except wire.WireError as exc:

@@ -71,6 +71,13 @@ def format_snapshot(s: dict[str, Any]) -> str:
         out += ["", "alerts"]
         out += [f"  step {a['step_detected']} (began ~{a['step_began']}): {visible(a['message'])}"
                 for a in s["alerts"]]
+    early = s.get("liveness", {}).get("stopped_early", [])
+    if early:
+        out += ["", "ranks that stopped early: " + ", ".join(
+            f"rank {r['rank']} on {visible(r['node'])} at step {r['last_step']}" for r in early)]
+    recorder = s.get("recorder")
+    if recorder and recorder.get("message"):
+        out += ["", f"{recorder['message']}; {recorder['unrecorded']} messages not recorded"]
     recording = s.get("recording")
     if recording and recording.get("skipped_bytes"):
         out += ["", f"recording damaged: {recording['skipped_bytes']} bytes stepped over, intact records kept"]

@@ -167,3 +167,18 @@ def test_report_of_a_damaged_recording_says_what_it_stepped_over(tmp_path: Path,
     report = json.loads(captured.out)["recording"]
     assert report["torn_at"] is None and report["skipped_bytes"] >= 64 and len(report["skipped"]) == 1
     assert "stepped over" in captured.err and len(captured.err.strip().splitlines()) == 1
+
+
+def test_an_empty_message_is_counted_bad_and_never_read_back_as_a_clock_tick(
+        endpoint: str, tmp_path: Path, zmq_context: zmq.Context) -> None:
+    path = tmp_path / "run.wtrace"
+    collector = Collector(endpoint, Ingest(), Recorder(path), context=zmq_context)  # drained here: no ticks
+    sender = zmq_context.socket(zmq.DEALER)
+    sender.setsockopt(zmq.LINGER, 0)
+    sender.connect(collector.bound)
+    sender.send_multipart([b""])
+    wait_for(lambda: collector.drain(10) >= 0 and collector.ingest.ledger.bad["empty"] == 1, "counted bad")
+    sender.close()
+    collector.close()
+    with RecordingReader(path) as reader:
+        assert list(reader) == [] and reader.tail.clean

@@ -48,6 +48,9 @@ class JobHeader(Widget):
         ]
         if snap["security"]["mode"] == "insecure":
             lines.append(self._insecure(snap, width))
+        silence = _silence(snap)
+        if silence:
+            lines.append(self._alarm(silence, width))
         recorder = snap.get("recorder")
         if recorder and recorder["state"] == "stopped":
             lines.append(self._alarm(f"{recorder['message']} · {fmt.count(recorder['unrecorded'])} messages not "
@@ -90,14 +93,17 @@ class JobHeader(Widget):
 
     def _pace(self, snap: Snapshot, width: int) -> Text:
         step_time = snap["step_time"]
+        silent = len(snap.get("liveness", {}).get("silent_ranks", ()))
+        live = snap["ranks"] - silent
         line = Text.assemble(
-            self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
+            self._figure("ranks", f"{live}/{snap['world']}", bad=live < snap["world"]),
             " ",
             self._figure("on", f"{len(snap['nodes'])} nodes"),
             SEPARATOR,
             self._figure("step", fmt.count(snap["last_step"])),
             SEPARATOR,
-            self._figure("", _rate(snap["steps_per_s"])),
+            self._figure("", "stalled" if snap.get("liveness", {}).get("stalled") else _rate(snap["steps_per_s"]),
+                         bad=bool(snap.get("liveness", {}).get("stalled"))),
             SEPARATOR,
             self._figure("step time", fmt.seconds(step_time["recent_s"])),
             " ",
@@ -153,6 +159,20 @@ class JobHeader(Widget):
         line = Text.assemble("▲ ", fmt.literal(text), style=self._style("alarm"))
         line.pad_right(max(0, width - line.cell_len))
         return line
+
+
+def _silence(snap: Snapshot) -> str:
+    """The standing line for silent ranks: the job stalled, or which ranks are silent since when."""
+    liveness = snap.get("liveness")
+    if not liveness or not liveness["silent_ranks"]:
+        return ""
+    if liveness["stalled"]:
+        age = fmt.seconds(liveness["age_s"])
+        return f"JOB STALLED: no rank has advanced for {age} (newest step {snap['last_step']})"
+    silent = [r for r in liveness["ranks"] if r["silent"]]
+    named = ", ".join(f"rank {r['rank']} ({fmt.seconds(r['age_s'])} since step {r['last_step']})" for r in silent[:4])
+    more = f" and {len(silent) - 4} more" if len(silent) > 4 else ""
+    return f"SILENT: {named}{more}"
 
 
 def _rate(steps_per_s: float | None) -> str:

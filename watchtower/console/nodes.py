@@ -89,7 +89,8 @@ class NodesView(TableView):
             Text(fmt.plain_percent(node["cpu_percent"]), justify="right"),
             Text(fmt.plain_percent(node["memory_percent"]), justify="right"),
             Text(fmt.signed_seconds(node["clock_offset_s"]), justify="right"),
-            Text(fmt.seconds(node["last_heard_s"]), justify="right"),
+            Text(("▲" if node.get("silent") else "") + fmt.seconds(node["last_heard_s"]),
+                 bad if node.get("silent") else "", justify="right"),
         ]
 
     def _retitle(self) -> None:
@@ -113,6 +114,7 @@ class NodesView(TableView):
                 ("node ", self.paint("quiet")),
                 fmt.literal(node["name"]),
                 (" hosts a STRAGGLER" if node["straggler"] else "", self.paint("bad")),
+                (" is SILENT" if node.get("silent") else "", self.paint("bad")),
                 f" · ranks {fmt.ranges(node['ranks'])} · NIC out {fmt.rate(node['nic_out_Bps'])}",
                 f" in {fmt.rate(node['nic_in_Bps'])} · CPU {fmt.plain_percent(node['cpu_percent'])}",
                 f" · memory {fmt.plain_percent(node['memory_percent'])}",
