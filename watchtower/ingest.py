@@ -10,9 +10,21 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 
+import numpy as np
+
 from agent import wire
 from watchtower.ledger import Ledger
 from watchtower.store import Store
+
+# Plausibility at the door (common practice, no source): what no real run can produce.
+TIME_GRACE_NS = 86_400 * 10**9  # a step may last as long as the run has been watched, plus a day
+MAX_FRAME_RATE = 1_000_000  # frames per second any one sender could number (a send costs microseconds)
+SEQ_SLACK = 1 << 20  # sequence numbers a sender may jump at once, whatever the time (a burst of drops)
+MAX_FIRST_SEQ = 1 << 40  # a sender first heard of: 35 years of frames at 1000 a second
+MAX_STEP = 1 << 40  # a step index beyond any run
+STEP_LEAP = 1_000_000  # steps a rank may be ahead of the newest step the others reported
+MAX_EXCHANGE_BYTES = 1 << 40  # one exchange of a terabyte
+MAX_NIC_BPS = 1e13  # 80 Tb/s through one NIC: beyond any interface
 
 
 class Ingest:
@@ -23,9 +35,12 @@ class Ingest:
         self.ledger = ledger or Ledger()
         self.steps = 0
         self.last_received_ns = 0  # the feed's "now": wall clock when live, the recording's clock on replay
+        self.first_received_ns: int | None = None  # the run's start as this ingest saw it
 
     def feed(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> wire.Message | None:
         self.last_received_ns = max(self.last_received_ns, received_ns)
+        if self.first_received_ns is None:
+            self.first_received_ns = received_ns
         if not frames:  # a collector's clock tick (see watchtower.collector): time passes, nobody spoke
             return None
         try:
@@ -37,7 +52,11 @@ class Ingest:
         if header.kind is wire.Kind.CLOCK_PONG:  # only the collector sends these
             self.ledger.reject("unexpected-kind")
             return None
-        if not self.ledger.accept(header.sender, header.seq):
+        implausible = self._implausible(message, received_ns)
+        if implausible:
+            self.ledger.reject(implausible)
+            return None
+        if not self.ledger.accept(header.sender, header.seq, received_ns):
             return None
         if isinstance(message, wire.Schema):
             self.store.add_schema(message)
@@ -53,6 +72,32 @@ class Ingest:
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
         return message
+
+    def _implausible(self, message: wire.Message, received_ns: int) -> str:
+        """Why a well-formed message cannot be real (a reason tag), or "": a sequence number past what its
+        sender could have numbered, times longer than the run, a step far past the others, absurd bytes."""
+        header = message.header
+        sender = self.ledger.senders.get(header.sender)
+        if sender is None:
+            if header.seq > MAX_FIRST_SEQ:
+                return "implausible-seq"
+        elif header.seq - sender.next_seq > SEQ_SLACK + MAX_FRAME_RATE * max(0, received_ns - sender.last_ns) // 10**9:
+            return "implausible-seq"
+        if isinstance(message, wire.Step):
+            longest = received_ns - (self.first_received_ns or received_ns) + TIME_GRACE_NS
+            table = message.exchanges
+            if message.duration_ns > longest or int(message.layer_ns.max(initial=0)) > longest or \
+                    (table.shape[1] and int(table[wire.X_END].max()) > longest):
+                return "implausible-time"
+            newest = self.store.last_step
+            if message.step > MAX_STEP or (newest >= 0 and message.step > newest + STEP_LEAP):
+                return "implausible-step"
+            if table.shape[1] and int(table[wire.X_NBYTES].max()) > MAX_EXCHANGE_BYTES:
+                return "implausible-bytes"
+        elif isinstance(message, wire.NodeSample) and message.nic_values.size and \
+                float(np.max(message.nic_values[:2])) > MAX_NIC_BPS:
+            return "implausible-bytes"
+        return ""
 
     def feed_all(self, records: Iterable[tuple[int, list[bytes]]]) -> int:
         """Feed every (received_ns, frames) record, e.g. a recording being read; returns how many."""
