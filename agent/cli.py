@@ -181,6 +181,9 @@ def _workload(args: argparse.Namespace) -> int:
                             curve_keys=_keys(args), spool=args.spool)
     result = run_workload(config)
     print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
+    if result.refused:
+        print(f"{PROG}: warning: the collector at {args.collector} refused this agent: {result.refused}; "
+              "none of its monitoring frames arrived", file=sys.stderr)
     return 0
 
 

@@ -47,6 +47,20 @@ MAX_MESSAGE_BYTES = (wire.HEADER.size + wire.STEP_META.size + 2 * 8 * wire.MAX_L
                      + len(wire.EXCHANGE_COLUMNS) * 8 * wire.MAX_EXCHANGES)
 
 
+NOTE_MAGIC = b"wtnote\x00\x01"  # a record of one frame starting so is the collector's note, never a message
+
+
+def encode_note(note: dict) -> list[bytes]:
+    """The frames of a collector's note to its recording (handshakes it refused, a gap in recording): what
+    a reader of the file could not otherwise know. Not a wire message; readers that do not know it count it
+    bad, as any frame without the wire magic."""
+    return [NOTE_MAGIC + json.dumps(note, separators=(",", ":")).encode()]
+
+
+def is_note(frames: list[bytes] | list[memoryview]) -> bool:
+    return len(frames) == 1 and bytes(frames[0][: len(NOTE_MAGIC)]) == NOTE_MAGIC
+
+
 def fits(frames: list[bytes] | list[memoryview]) -> bool:
     """Whether a message may be recorded: no more frames and bytes than any valid message could have."""
     return len(frames) <= MAX_PARTS and sum(len(frame) for frame in frames) <= MAX_MESSAGE_BYTES

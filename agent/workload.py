@@ -78,6 +78,7 @@ class WorkloadResult:
     steps: int
     dropped: int  # frames the probe could not queue
     frames: list[list[bytes]]  # the probe's frames when it published nowhere
+    refused: str | None = None  # why the collector refused this rank's probe, if it did
 
 
 def neighbours(rank: int, world: int) -> list[int]:
@@ -403,4 +404,5 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
                     for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
                         slab.absorb(halo)
             probe.end_step()
-    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)
+        refused = probe.refused()
+    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames, refused)

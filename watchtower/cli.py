@@ -234,7 +234,8 @@ def _watch(args: argparse.Namespace) -> int:
         metrics = _metrics(args.metrics)
         try:
             recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
-                                                                                 "listen": args.listen})
+                                                                                 "listen": args.listen,
+                                                                                 "security": security})
             collector = _collector(args.listen, Ingest(), recorder, keys)
         except UsageError:
             if metrics is not None:
@@ -303,7 +304,7 @@ def _collect(args: argparse.Namespace) -> int:
     metrics = _metrics(args.metrics)
     try:
         ingest = _resume(args.record)
-        recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
+        recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen, "security": security})
         collector = _collector(args.listen, ingest, recorder, keys)
     except UsageError:
         if metrics is not None:

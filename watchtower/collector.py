@@ -11,7 +11,7 @@ empty record, its clock tick: a recording then shows silence as time passing wit
 With keys (``watchtower.keys``) the socket is a CURVE server: traffic is encrypted, and a ZAP handler
 admits only agents whose public key is in the allow-list. A refused handshake never reaches the socket
 as a message, so a monitor on the socket counts each one in the ledger (``rejected`` by reason); they
-are not frames, so a recording does not hold them.
+are not frames, so the collector notes them in its recording (``agent.records.encode_note``) for readers.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
-from agent.records import fits
+from agent.records import encode_note, fits, is_note
 from watchtower.attach import Beacon
 from watchtower.ingest import Ingest
 from watchtower.keys import AllowList, HeadKeys
@@ -152,9 +152,14 @@ class Collector:
     def _count_refusals(self) -> None:
         if self._monitor is None:
             return
+        refused: dict[str, int] = {}
         while self._monitor.poll(0):
             event = recv_monitor_message(self._monitor)
-            self.ingest.ledger.refuse(refusal_reason(event["event"], event["value"]))
+            reason = refusal_reason(event["event"], event["value"])
+            self.ingest.ledger.refuse(reason)
+            refused[reason] = refused.get(reason, 0) + 1
+        if refused and self.recorder is not None:  # handshakes are not frames: note them for readers of the file
+            self.recorder.write_many([(time.time_ns(), encode_note({"refused": refused}))])
 
     def drain(self, timeout_ms: int) -> int:
         """Wait up to ``timeout_ms`` for traffic, then take everything waiting (bounded batch)."""
@@ -170,8 +175,9 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
-            if not frames or not fits(frames):  # an empty message would read back as a clock tick
-                self.ingest.ledger.reject("empty" if not frames else "oversize-message")
+            if not frames or not fits(frames) or is_note(frames):  # would read back as a tick or a note
+                self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames)
+                                          else "oversize-message")
                 continue
             batch.append((received_ns, frames))
             if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:

@@ -8,11 +8,13 @@ frames come from.
 
 from __future__ import annotations
 
+import json
 from collections.abc import Iterable
 
 import numpy as np
 
 from agent import wire
+from agent.records import NOTE_MAGIC, is_note
 from watchtower.ledger import Ledger
 from watchtower.store import Store
 
@@ -25,6 +27,7 @@ MAX_STEP = 1 << 40  # a step index beyond any run
 STEP_LEAP = 1_000_000  # steps a rank may be ahead of the newest step the others reported
 MAX_EXCHANGE_BYTES = 1 << 40  # one exchange of a terabyte
 MAX_NIC_BPS = 1e13  # 80 Tb/s through one NIC: beyond any interface
+MAX_GAPS = 100  # recording gaps kept from the collector's notes
 
 
 class Ingest:
@@ -36,12 +39,16 @@ class Ingest:
         self.steps = 0
         self.last_received_ns = 0  # the feed's "now": wall clock when live, the recording's clock on replay
         self.first_received_ns: int | None = None  # the run's start as this ingest saw it
+        self.recording_gaps: list[dict[str, int | str]] = []  # from the collector's notes: recording stopped
 
     def feed(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> wire.Message | None:
         self.last_received_ns = max(self.last_received_ns, received_ns)
         if self.first_received_ns is None:
             self.first_received_ns = received_ns
         if not frames:  # a collector's clock tick (see watchtower.collector): time passes, nobody spoke
+            return None
+        if is_note(frames):
+            self._note(frames[0])
             return None
         try:
             message = wire.decode(frames)
@@ -72,6 +79,24 @@ class Ingest:
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
         return message
+
+    def _note(self, frame: bytes | memoryview) -> None:
+        """A collector's note in a recording (live, the collector refuses frames that look like one):
+        handshakes it refused, and gaps in recording (a full disk)."""
+        try:
+            note = json.loads(bytes(frame[len(NOTE_MAGIC):]))
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            self.ledger.reject("bad-note")
+            return
+        refused = note.get("refused") if isinstance(note, dict) else None
+        if isinstance(refused, dict):
+            for reason, count in refused.items():
+                if isinstance(count, int) and count > 0:
+                    self.ledger.rejected[str(reason)[:64]] += count
+        gap = note.get("recording_gap") if isinstance(note, dict) else None
+        if isinstance(gap, dict) and len(self.recording_gaps) < MAX_GAPS:
+            self.recording_gaps.append({key: gap.get(key) for key in ("stopped_at", "reason", "resumed_at",
+                                                                      "unrecorded")})
 
     def _implausible(self, message: wire.Message, received_ns: int) -> str:
         """Why a well-formed message cannot be real (a reason tag), or "": a sequence number past what its

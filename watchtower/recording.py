@@ -17,6 +17,7 @@ still being written) it stops, reporting the byte offset where the trouble start
 
 from __future__ import annotations
 
+import contextlib
 import errno
 import gzip
 import io
@@ -44,6 +45,7 @@ from agent.records import (
     RecordWriter,
     WriteFailed,
     decode_resume,
+    encode_note,
     encode_record,
     encode_resume,
 )
@@ -83,6 +85,7 @@ class Recorder(RecordWriter):
         self.stop_reason = ""
         self.stops = 0
         self._retry_at = 0.0
+        self._unrecorded_before = 0
 
     def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
         if self.stopped_at is not None and not self._resume():
@@ -91,13 +94,14 @@ class Recorder(RecordWriter):
         try:
             super().write_many(batch)
         except WriteFailed as exc:
-            self.unrecorded += exc.lost
             self._stop(exc.__cause__)
+            self.unrecorded += exc.lost
 
     def _stop(self, error: BaseException | None) -> None:
         self.stopped_at = self._size()
         code = getattr(error, "errno", None)
         self.stop_reason = "disk full" if code == errno.ENOSPC else (getattr(error, "strerror", None) or "write failed")
+        self._unrecorded_before = self.unrecorded
         self.stops += 1
         self._retry_at = self.clock() + self.retry_s
 
@@ -110,7 +114,11 @@ class Recorder(RecordWriter):
         if error is not None:
             self._retry_at = self.clock() + self.retry_s
             return False
+        gap = {"stopped_at": self.stopped_at, "reason": self.stop_reason, "resumed_at": at,
+               "unrecorded": self.unrecorded - self._unrecorded_before}
         self.stopped_at, self.stop_reason = None, ""
+        with contextlib.suppress(WriteFailed):  # the note is a courtesy to readers; the marker is what counts
+            super().write_many([(time.time_ns(), encode_note({"recording_gap": gap}))])
         return True
 
     def _size(self) -> int:

@@ -105,9 +105,10 @@ def build_snapshot(
         ],
         "step_time": {"recent_s": recent, "trend": [_f(x) for x in trend]},
         "loss": ingest.ledger.as_json(),
-        "security": security or {"mode": "loopback", "warning": None},
+        "security": _security(security, meta),
         "replay": replay,
         "recorder": recorder,
+        "recording_gaps": ingest.recording_gaps,
         "run_totals": {"layers": [
             {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
             for i, name in enumerate(store.layers)
@@ -117,6 +118,18 @@ def build_snapshot(
         snapshot["eta_s"] = None
     snapshot["alerts"] = snapshot["alerts"] + _silence_alerts(liveness, store.job or cluster.name)
     return snapshot
+
+
+def _security(given: dict[str, Any] | None, meta: dict) -> dict[str, Any]:
+    """The transport mode in force: the live collector's, else what the recording's collector noted in its
+    metadata, else "unknown" (never a guess)."""
+    if given is not None:
+        return given
+    noted = meta.get("security")
+    if isinstance(noted, dict) and noted.get("mode") in ("loopback", "keys", "insecure"):
+        return {"mode": noted["mode"], "warning": noted.get("warning") if isinstance(noted.get("warning"), str)
+                else None}
+    return {"mode": "unknown", "warning": None}
 
 
 def _liveness(ingest: Ingest, now_ns: int) -> dict[str, Any]:

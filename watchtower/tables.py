@@ -75,6 +75,13 @@ def format_snapshot(s: dict[str, Any]) -> str:
     if early:
         out += ["", "ranks that stopped early: " + ", ".join(
             f"rank {r['rank']} on {visible(r['node'])} at step {r['last_step']}" for r in early)]
+    for gap in s.get("recording_gaps", []):
+        out += ["", f"recording stopped: {gap['reason']} at byte {gap['stopped_at']}; {gap['unrecorded']} messages "
+                    f"not recorded; resumed at byte {gap['resumed_at']}"]
+    security = s.get("security", {})
+    loss = s.get("loss", {})
+    out += ["", f"transport: {security.get('mode')}; refused handshakes: {loss.get('rejected', 0)}"
+            + "".join(f", {reason} {n}" for reason, n in loss.get("rejected_reasons", {}).items())]
     recorder = s.get("recorder")
     if recorder and recorder.get("message"):
         out += ["", f"{recorder['message']}; {recorder['unrecorded']} messages not recorded"]

@@ -21,6 +21,7 @@ import zmq
 from trust_helpers import wait_for
 
 from agent import Probe
+from agent.records import is_note
 from watchtower.collector import Collector
 from watchtower.console import ConsoleApp, StaticFeed
 from watchtower.ingest import Ingest
@@ -59,11 +60,16 @@ class Clock:
         return self.now
 
 
-def read_back(blob: bytes) -> tuple[list[int], Tail]:
+def read_back(blob: bytes) -> tuple[list[int], Tail, Ingest]:
+    """Times of the records that are messages, how reading ended, and the recording through the ingest."""
     stream = io.BytesIO(blob)
     read_meta(stream)
-    tail = Tail()
-    return [t for t, _ in iter_records(stream, tail)], tail
+    tail, ingest, times = Tail(), Ingest(), []
+    for t, frames in iter_records(stream, tail):
+        ingest.feed(t, frames)
+        if not is_note(frames):
+            times.append(t)
+    return times, tail, ingest
 
 
 def test_a_full_disk_stops_recording_counts_what_is_not_recorded_and_resumes() -> None:
@@ -86,8 +92,14 @@ def test_a_full_disk_stops_recording_counts_what_is_not_recorded_and_resumes() -
     clock.now += 1.0
     recorder.write_many([(t, [b"after"]), (t + 1, [b"after"])])
     assert recorder.status()["state"] == "recording" and recorder.stops == 1
-    times, tail = read_back(bytes(disk.data))
+    times, tail, replayed = read_back(bytes(disk.data))
     assert times == [*range(written), t, t + 1]
+    assert replayed.recording_gaps == [{"stopped_at": 1000, "reason": "disk full", "resumed_at": 1000,
+                                        "unrecorded": 6}]
+    from watchtower.tables import format_snapshot
+
+    text = format_snapshot(build_snapshot(replayed, cluster_for({}, None), source={"kind": "recording", "where": "x"}))
+    assert "recording stopped: disk full at byte 1000; 6 messages not recorded; resumed at byte 1000" in text
     assert tail.resumes == 1 and tail.offset is None and tail.skipped[0].start < 1000 == tail.skipped[0].end
 
 

@@ -32,7 +32,7 @@ UNSAFE = {"Cc", "Cf", "Zl", "Zp"}  # control and format characters, line and par
 REASONS = {"empty", "bad-header-size", "bad-magic", "bad-version", "bad-kind", "bad-part-count", "bad-meta-size",
            "bad-length", "oversize", "bad-text", "bad-name", "bad-schema", "bad-step", "bad-timing", "bad-exchange",
            "bad-sample", "unexpected-kind", "unknown-schema", "implausible-time", "implausible-step", "implausible-seq",
-           "implausible-bytes"}
+           "implausible-bytes", "bad-note"}
 
 
 def header(kind: int, seq: int, count_a: int, count_b: int, magic: bytes = wire.MAGIC, version: int = 1) -> bytes:
