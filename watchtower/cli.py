@@ -200,9 +200,20 @@ def _recorder(path: Path, meta: dict) -> Recorder:
         raise UsageError(str(exc)) from None
 
 
-def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: HeadKeys | None) -> Collector:
+def _refuse_job(record: Path | None) -> Callable[[str, str], None]:
+    def say(job: str, owner: str) -> None:
+        where = f"{record} belongs to" if record is not None else "this collector watches"
+        print(f"{PROG}: warning: refusing frames of job {job!r}: {where} job {owner!r} (one job per recording); "
+              "collect that job with its own --record", file=sys.stderr, flush=True)
+    return say
+
+
+def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: HeadKeys | None,
+               console: bool = False) -> Collector:
+    """``console``: a console draws on the terminal; refused jobs then show in its loss figures only."""
     try:
-        return Collector(listen, ingest, recorder, keys=keys)
+        return Collector(listen, ingest, recorder, keys=keys,
+                         on_foreign_job=None if console else _refuse_job(None if recorder is None else recorder.path))
     except EndpointError as exc:
         if recorder is not None:
             recorder.close()
@@ -236,7 +247,7 @@ def _watch(args: argparse.Namespace) -> int:
             recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
                                                                                  "listen": args.listen,
                                                                                  "security": security})
-            collector = _collector(args.listen, Ingest(), recorder, keys)
+            collector = _collector(args.listen, Ingest(), recorder, keys, console=True)
         except UsageError:
             if metrics is not None:
                 metrics.close()

@@ -93,6 +93,13 @@ def refusal_reason(event: int, value: int) -> str:
     return "handshake"
 
 
+def _sender(frame: bytes) -> int | None:
+    """The sender id of a header frame without validating the rest (None if it is no header)."""
+    if wire.peek_kind(frame) is None:
+        return None
+    return int.from_bytes(frame[8:16], "little")
+
+
 def split_envelope(frames: list[bytes]) -> tuple[list[bytes], list[bytes]]:
     """Split a ROUTER message into (return address, payload) at the first empty frame."""
     for i, frame in enumerate(frames):
@@ -113,11 +120,13 @@ class Collector:
         context: zmq.Context | None = None,
         on_message: Callable[[int, list[bytes], wire.Message | None], None] | None = None,
         keys: HeadKeys | None = None,
+        on_foreign_job: Callable[[str, str], None] | None = None,
     ) -> None:
         self.endpoint = parse_endpoint(listen, binding=True)
         self.ingest = ingest
         self.recorder = recorder
         self.on_message = on_message
+        self.on_foreign_job = on_foreign_job  # (refused job, the recording's job): tell the user once per job
         self.sender = secrets.randbits(63)
         self._next_tick = time.monotonic() + TICK_S
         self._seq = 0
@@ -175,6 +184,9 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
+            if frames and self.ingest.foreign(_sender(frames[0])):  # one job per recording
+                self.ingest.ledger.reject("other-job")
+                continue
             if not frames or not fits(frames) or is_note(frames):  # would read back as a tick or a note
                 self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames)
                                           else "oversize-message")
@@ -184,10 +196,14 @@ class Collector:
                 self._answer_ping(envelope, frames, received_ns)
         if self.recorder is not None:
             self.recorder.write_many(batch)
+        known = len(self.ingest.foreign_jobs)
         for received_ns, frames in batch:
             message = self.ingest.feed(received_ns, frames)
             if self.on_message is not None:
                 self.on_message(received_ns, frames, message)
+        if len(self.ingest.foreign_jobs) > known and self.on_foreign_job is not None:
+            for job in list(self.ingest.foreign_jobs)[known:]:
+                self.on_foreign_job(job, self.ingest.store.job)
         return len(batch)
 
     def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:

@@ -27,6 +27,7 @@ MAX_STEP = 1 << 40  # a step index beyond any run
 STEP_LEAP = 1_000_000  # steps a rank may be ahead of the newest step the others reported
 MAX_EXCHANGE_BYTES = 1 << 40  # one exchange of a terabyte
 MAX_NIC_BPS = 1e13  # 80 Tb/s through one NIC: beyond any interface
+MAX_FOREIGN_SENDERS = 1 << 16  # senders of other jobs remembered
 MAX_GAPS = 100  # recording gaps kept from the collector's notes
 
 
@@ -40,6 +41,8 @@ class Ingest:
         self.last_received_ns = 0  # the feed's "now": wall clock when live, the recording's clock on replay
         self.first_received_ns: int | None = None  # the run's start as this ingest saw it
         self.recording_gaps: list[dict[str, int | str]] = []  # from the collector's notes: recording stopped
+        self.foreign_jobs: dict[str, int] = {}  # other jobs' names -> frames refused (one job per recording)
+        self._foreign_senders: dict[int, str] = {}
 
     def feed(self, received_ns: int, frames: list[bytes] | list[memoryview]) -> wire.Message | None:
         self.last_received_ns = max(self.last_received_ns, received_ns)
@@ -58,6 +61,9 @@ class Ingest:
         header = message.header
         if header.kind is wire.Kind.CLOCK_PONG:  # only the collector sends these
             self.ledger.reject("unexpected-kind")
+            return None
+        if self._foreign(message):
+            self.ledger.reject("other-job")
             return None
         implausible = self._implausible(message, received_ns)
         if implausible:
@@ -79,6 +85,29 @@ class Ingest:
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
         return message
+
+    def foreign(self, sender: int | None) -> bool:
+        """Whether a sender belongs to another job than the one this ingest (and its recording) holds."""
+        return sender in self._foreign_senders
+
+    def _foreign(self, message: wire.Message) -> bool:
+        """One job per recording: the first job named owns it; a sender that names another is refused, its
+        frames counted bad (``other-job``), never merged with this job's."""
+        sender = message.header.sender
+        if isinstance(message, wire.Schema) and message.job:
+            job = self.store.job
+            if job and message.job != job:
+                if len(self._foreign_senders) < MAX_FOREIGN_SENDERS:
+                    self._foreign_senders[sender] = message.job
+                self.foreign_jobs[message.job] = self.foreign_jobs.get(message.job, 0) + 1
+                return True
+            self._foreign_senders.pop(sender, None)
+            return False
+        name = self._foreign_senders.get(sender)
+        if name is not None:
+            self.foreign_jobs[name] += 1
+            return True
+        return False
 
     def _note(self, frame: bytes | memoryview) -> None:
         """A collector's note in a recording (live, the collector refuses frames that look like one):
