@@ -72,6 +72,8 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--listen", help="collect here in this process instead of attaching (an endpoint)")
     watch.add_argument("--record", type=Path, help="with --listen: also append to this recording")
     watch.add_argument("--follow", type=Path, help="follow this recording as a collector appends to it")
+    watch.add_argument("--pid", type=_positive(int), help="attach to the running collect with this process id")
+    watch.add_argument("--job", help="attach to the running collect of this job")
     watch.add_argument("--insecure", action="store_true",
                        help="with --listen: allow listening beyond loopback without keys")
     watch.add_argument("--keys", type=Path, metavar="DIR",
@@ -227,19 +229,25 @@ def _run_console(feed: Feed, metrics: MetricsServer | None = None) -> int:
         from watchtower.metrics import PublishingFeed
 
         feed = PublishingFeed(feed, metrics.metrics)
+    app = ConsoleApp(feed)
     try:
-        ConsoleApp(feed).run()
+        app.run()
     finally:
         if metrics is not None:
             metrics.close()
+    if app.ended:
+        print(f"{PROG}: error: {app.ended}", file=sys.stderr)
+        return 1
     return 0
 
 
 def _watch(args: argparse.Namespace) -> int:
-    from watchtower.attach import find_collectors, run_dir
+    from watchtower.attach import choose, find_collectors
     from watchtower.feeds import AttachFeed, LiveFeed
 
     cluster = _cluster(args.cluster)
+    if args.listen and (args.follow is not None or args.pid is not None or args.job is not None):
+        raise UsageError("--listen collects here; --follow, --pid and --job attach to a running collect: give one")
     if args.listen:
         security, keys = _listen(args.listen, args.insecure, args.keys)
         metrics = _metrics(args.metrics)
@@ -256,15 +264,14 @@ def _watch(args: argparse.Namespace) -> int:
         return _run_console(feed, metrics)
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
+    if args.follow is not None and (args.pid is not None or args.job is not None):
+        raise UsageError("--pid and --job choose a running collect; --follow names a recording: give one")
     ask = None
     if args.follow is not None:
         recording, security = args.follow, None
     else:
-        running = find_collectors()
-        if not running:
-            raise UsageError(f"no running 'watchtower collect' found (looked in {run_dir()}); start one, "
-                             "or give --listen or --follow")
-        recording, security, ask = running[0].recording, running[0].security, running[0].ask
+        chosen = choose(find_collectors(), pid=args.pid, job=args.job, ask=_prompt if sys.stdin.isatty() else None)
+        recording, security, ask = chosen.recording, chosen.security, chosen.ask
     try:
         feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window, ask=ask)
     except OSError as exc:
@@ -272,6 +279,14 @@ def _watch(args: argparse.Namespace) -> int:
     except RecordingError as exc:
         raise UsageError(f"cannot follow {recording}: {exc}") from None
     return _run_console(feed, _metrics(args.metrics))
+
+
+def _prompt(text: str) -> str:
+    print(text, end="", file=sys.stderr, flush=True)
+    try:
+        return input()
+    except EOFError:
+        return ""
 
 
 def _replay(args: argparse.Namespace) -> int:

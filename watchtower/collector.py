@@ -233,6 +233,7 @@ class Collector:
                     break
                 timeout = max(1, min(timeout, int(left * 1000)))
             if beacon is not None:
+                beacon.info["job"] = self.ingest.store.job
                 if self.recorder is not None:
                     beacon.info["recorder"] = self.recorder.status()
                 beacon.answer()

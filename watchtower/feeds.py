@@ -16,7 +16,7 @@ from typing import Any
 from agent import wire
 from watchtower.cluster import Cluster
 from watchtower.collector import Collector
-from watchtower.console.feed import Deliver
+from watchtower.console.feed import Deliver, FeedEnded
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader, Tail, read_meta, resume_records
 from watchtower.snapshot import build_snapshot, cluster_for
@@ -122,9 +122,16 @@ class AttachFeed:
         return self._recorder
 
     def catch_up(self) -> int:
-        """Ingest every complete record appended since the last call; returns how many."""
-        tail = Tail(consumed=self._offset)
-        count = self.ingest.feed_all(resume_records(self.recording, tail))
+        """Ingest every complete record appended since the last call; returns how many. Raises
+        ``FeedEnded`` when the recording is gone or was cut shorter than what was read."""
+        try:
+            if self.recording.stat().st_size < self._offset:
+                raise FeedEnded(f"the recording {self.recording} was truncated while being followed")
+            tail = Tail(consumed=self._offset)
+            count = self.ingest.feed_all(resume_records(self.recording, tail))
+        except OSError as exc:
+            raise FeedEnded(f"the recording {self.recording} is gone ({exc.strerror}); "
+                            "was its collector stopped and the file removed?") from None
         self._offset = tail.consumed  # a half-written last record is read again next time, whole
         return count
 

@@ -14,7 +14,7 @@ from textual.timer import Timer
 from textual.widgets import ContentSwitcher, Footer, Static
 
 from .alerts import AlertsView
-from .feed import Feed, ReplayControls, Snapshot
+from .feed import Feed, FeedEnded, ReplayControls, Snapshot
 from .header import JobHeader
 from .howto import HowView
 from .layers import LayersView
@@ -81,6 +81,7 @@ class ConsoleApp(App[None]):
         self._throttle: Throttle[Snapshot] = Throttle(redraw_interval_s, clock)
         self._redraw_timer: Timer | None = None
         self._view_before_how = "layers"
+        self.ended: str | None = None  # why the feed ended the console, for the command to print
 
     def compose(self) -> ComposeResult:
         yield JobHeader()
@@ -106,7 +107,11 @@ class ConsoleApp(App[None]):
         self.feed.stop()
 
     def _run_feed(self) -> None:
-        self.feed.start(self._deliver)
+        try:
+            self.feed.start(self._deliver)
+        except FeedEnded as exc:
+            self.ended = str(exc)
+            self.call_from_thread(self.exit, return_code=1)
 
     def _deliver(self, snapshot: Snapshot) -> None:
         """Called on the feed's thread: hand the snapshot to the event loop and nothing else."""
