@@ -7,6 +7,7 @@ input errors), never a traceback.
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import signal
 import sys
@@ -45,8 +46,8 @@ def _positive(kind: type[int] | type[float]) -> Callable[[str], float]:
             value = kind(text)
         except ValueError:
             raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-        if value <= 0:
-            raise argparse.ArgumentTypeError(f"must be positive, got {text!r}")
+        if not math.isfinite(value) or value <= 0:
+            raise argparse.ArgumentTypeError(f"must be a finite number above zero, got {text!r}")
         return value
 
     parse.__name__ = kind.__name__
