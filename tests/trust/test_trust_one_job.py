@@ -44,15 +44,18 @@ def test_a_second_job_appended_to_a_recording_is_refused_not_merged(
     record = tmp_path / "run.wtrace"
     listen = f"tcp://127.0.0.1:{free_tcp_port()}"
     first = start_collector(listen, record)
-    run_job(listen, "alpha", 1, 5, zmq_context)
-    wait_for(lambda: report(record, capsys)["steps"] == 5, "the first job recorded")
-    kill(first, signal.SIGTERM)
+    try:
+        run_job(listen, "alpha", 1, 5, zmq_context)
+        wait_for(lambda: report(record, capsys)["steps"] == 5, "the first job recorded")
+    finally:
+        kill(first, signal.SIGTERM)
     second = start_collector(listen, record)  # restarted on the same file
-    wait_for(lambda: bool(find_collectors()), "the restarted collector listening")  # the file exists already
-    run_job(listen, "beta", 2, 5, zmq_context)
-    wait_for(lambda: report(record, capsys)["loss"]["bad_reasons"].get("other-job", 0) >= 2, "beta refused")
-
-    kill(second, signal.SIGTERM)
+    try:
+        wait_for(lambda: bool(find_collectors()), "the restarted collector listening")  # the file exists already
+        run_job(listen, "beta", 2, 5, zmq_context)
+        wait_for(lambda: report(record, capsys)["loss"]["bad_reasons"].get("other-job", 0) >= 2, "beta refused")
+    finally:
+        kill(second, signal.SIGTERM)
     snap = report(record, capsys)
     assert snap["job"] == "alpha" and snap["ranks"] == 1 and [n["name"] for n in snap["nodes"]] == ["alpha-node0"]
     assert snap["steps"] == 5 and snap["loss"]["missing"] == 0
