@@ -139,15 +139,18 @@ class Ingest:
             return "implausible-seq"
         if isinstance(message, wire.Step):
             longest = received_ns - (self.first_received_ns or received_ns) + TIME_GRACE_NS
-            table = message.exchanges
-            if message.duration_ns > longest or int(message.layer_ns.max(initial=0)) > longest or \
-                    (table.shape[1] and int(table[wire.X_END].max()) > longest):
-                return "implausible-time"
             newest = self.store.last_step
             if message.step > MAX_STEP or (newest >= 0 and message.step > newest + STEP_LEAP):
                 return "implausible-step"
-            if table.shape[1] and int(table[wire.X_NBYTES].max()) > MAX_EXCHANGE_BYTES:
-                return "implausible-bytes"
+            if message.duration_ns > longest or message.layer_ns.max() > longest:
+                return "implausible-time"
+            table = message.exchanges
+            if table.shape[1]:
+                nbytes, _, end = table[wire.X_NBYTES:wire.X_END + 1].max(axis=1).tolist()  # one reduction
+                if end > longest:
+                    return "implausible-time"
+                if nbytes > MAX_EXCHANGE_BYTES:
+                    return "implausible-bytes"
         elif isinstance(message, wire.NodeSample) and message.nic_values.size and \
                 float(np.max(message.nic_values[:2])) > MAX_NIC_BPS:
             return "implausible-bytes"
