@@ -142,7 +142,7 @@ class Ingest:
             newest = self.store.last_step
             if message.step > MAX_STEP or (newest >= 0 and message.step > newest + STEP_LEAP):
                 return "implausible-step"
-            if message.duration_ns > longest or message.layer_ns.max() > longest:
+            if message.duration_ns > longest or (message.layer_ns.size and message.layer_ns.max() > longest):
                 return "implausible-time"
             table = message.exchanges
             if table.shape[1]:
