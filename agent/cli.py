@@ -21,11 +21,12 @@ from typing import NoReturn
 
 import psutil
 
+from agent import wire
 from agent.checkfile import CheckFileError, load_check_file
 from agent.checkplan import DEFAULT_BUDGET
 from agent.daemon import CheckOptions, DaemonError, default_local_endpoint, run_daemon
 from agent.keys import KeyFileError, curve_keys
-from agent.workload import ConnectError, WorkloadConfig, WorkloadError, run_workload
+from agent.workload import MAX_HALO_BYTES, ConnectError, WorkloadConfig, WorkloadError, run_workload
 
 PROG = "watchtower-agent"
 DISTRIBUTION = "watchtower-fabric"
@@ -138,6 +139,26 @@ def _positive(kind: type[int] | type[float], allow_zero: bool = False) -> Callab
     return parse
 
 
+def node_name(text: str) -> str:
+    """A node name the wire format carries (at most 256 UTF-8 bytes)."""
+    try:
+        return wire.check_name(text, "node name")
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _bounded(kind: type[int] | type[float], most: float, allow_zero: bool = False) -> Callable[[str], int | float]:
+    """``_positive``, and at most ``most``."""
+    check = _positive(kind, allow_zero)
+
+    def parse(text: str) -> int | float:
+        value = check(text)
+        if value > most:
+            raise argparse.ArgumentTypeError(f"{text!r} is above the limit of {most:,}")
+        return value
+    return parse
+
+
 def _key_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--keys", metavar="AGENT_SECRET_FILE",
                         help="this agent's secret key file (watchtower keys agent): encrypt and authenticate")
@@ -152,7 +173,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     run = commands.add_parser("run", help="relay local probes to the collector and report node figures")
     run.add_argument("--collector", required=True, type=endpoint, help="collector endpoint, tcp://HOST:PORT")
-    run.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
+    run.add_argument("--node", type=node_name, default=socket.gethostname(), help="node name (default: host name)")
     run.add_argument("--local", type=endpoint, default=None,
                      help=f"endpoint local probes publish to (default: {default_local_endpoint()})")
     run.add_argument("--interval", type=_positive(float), default=1.0,
@@ -179,13 +200,14 @@ def build_parser() -> argparse.ArgumentParser:
                      help="HOST:PORT where each rank listens, in rank order (world = their count)")
     job.add_argument("--collector", required=True, type=endpoint,
                      help="where this rank's probe publishes (collector or node daemon)")
-    job.add_argument("--node", default=socket.gethostname(), help="node name (default: host name)")
+    job.add_argument("--node", type=node_name, default=socket.gethostname(), help="node name (default: host name)")
     job.add_argument("--steps", type=_positive(int, allow_zero=True), default=10,
                      help="training steps to run, then stop (default %(default)s)")
     job.add_argument("--layers", type=_positive(int), default=8,
                      help="layers per step, each computing then exchanging halos; at most 4096 (default %(default)s)")
-    job.add_argument("--exchange-bytes", type=_positive(int, allow_zero=True), default=65536,
-                     help="mean halo size in bytes; layers vary from 1/8 to 2 times it (default %(default)s)")
+    job.add_argument("--exchange-bytes", type=_bounded(int, MAX_HALO_BYTES // 2, allow_zero=True), default=65536,
+                     help="mean halo size in bytes; layers vary from 1/8 to 2 times it; at most 512 MiB "
+                          "(default %(default)s)")
     job.add_argument("--compute-ms", type=_positive(float, allow_zero=True), default=5.0,
                      help="compute time per layer in milliseconds (default %(default)s)")
     job.add_argument("--collective", action="store_true",
@@ -284,6 +306,9 @@ def _workload(args: argparse.Namespace) -> int:
                             curve_keys=_keys(args), spool=args.spool, collective=args.collective)
     result = run_workload(config)
     print(f"rank {args.rank}: {result.steps} steps, {result.dropped} monitoring frames dropped")
+    if result.refused:
+        print(f"{PROG}: warning: the collector at {args.collector} refused this agent: {result.refused}; "
+              "none of its monitoring frames arrived", file=sys.stderr)
     return 0
 
 
@@ -309,6 +334,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _fail(str(exc), USAGE_ERROR)
     except WorkloadError as exc:
         return _fail(str(exc), RUN_ERROR)
+    except MemoryError:
+        return _fail("not enough memory for the halos and slabs asked for; try a smaller --exchange-bytes",
+                     RUN_ERROR)
     except KeyboardInterrupt:
         return _fail("interrupted", 130)
 

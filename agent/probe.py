@@ -28,6 +28,7 @@ from types import TracebackType
 
 import numpy as np
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
 from agent.clock import Clock, default_clock
@@ -48,6 +49,21 @@ from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
 CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
+_HANDSHAKE_EVENTS = (zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
+                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
+
+
+def _refusal(event: int, value: int) -> str:
+    """A refused handshake, in words for the agent's user."""
+    if event == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
+        return "its key is not on the collector's allow-list" if value == 400 else f"authentication failed ({value})"
+    if event == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL:
+        if value == zmq.PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH:
+            return "the collector and this agent disagree on keys (one uses them, the other not)"
+        if value == zmq.PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC:
+            return "the collector's key is not the one given with --server-key"
+        return f"protocol error {value}"
+    return "the handshake failed"
 
 
 class _Region:
@@ -251,6 +267,8 @@ class Probe:
             self._spool = RecordWriter(spool, {"tool": "watchtower-agent spool", "sender": self.sender,
                                                "rank": rank, "world": world, "node": node, "job": job})
         self._socket: zmq.Socket | None = None
+        self._monitor: zmq.Socket | None = None
+        self._refused: str | None = None
         if endpoint is not None:
             ctx = context or zmq.Context.instance()
             sock = ctx.socket(zmq.DEALER)
@@ -259,8 +277,10 @@ class Probe:
                 sock.setsockopt(zmq.LINGER, 1000)
                 if curve_keys is not None:
                     sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
+                self._monitor = sock.get_monitor_socket(_HANDSHAKE_EVENTS)
                 sock.connect(endpoint)
             except zmq.ZMQError:  # a bad key or endpoint: leave nothing open that would hang the context
+                self._close_monitor(sock)
                 sock.close()
                 self._close_spool()
                 raise
@@ -599,15 +619,35 @@ class Probe:
             self._next_ping = now + CLOCK_EVERY_S
             self._send(wire.encode_ping(self.sender, self.seq, self.wall_clock()))
 
+    def refused(self) -> str | None:
+        """Why the collector refused this probe's handshake (None while it has not): what a refused agent
+        tells its user, since no frame of its ever arrives."""
+        if self._monitor is not None:
+            while self._monitor.poll(0):
+                event = recv_monitor_message(self._monitor)
+                if event["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
+                    self._refused = None
+                else:
+                    self._refused = _refusal(event["event"], event["value"])
+        return self._refused
+
     def close(self, drain_s: float = 2.0) -> None:
         """Close the socket and spool; with device timing, first publish what the device finishes within
         ``drain_s`` seconds."""
         if self._pending:
             self.drain(drain_s)
         if self._socket is not None:
+            self.refused()
+            self._close_monitor(self._socket)
             self._socket.close()
             self._socket = None
         self._close_spool()
+
+    def _close_monitor(self, sock: zmq.Socket) -> None:
+        if self._monitor is not None:
+            sock.disable_monitor()
+            self._monitor.close()
+            self._monitor = None
 
     def __enter__(self) -> Probe:
         return self

@@ -12,17 +12,25 @@ recordings use (``watchtower/recording.py`` reads both and re-exports these name
 A writer that opens a file that already holds data (a collector restarted after a crash) first appends a
 ``resume`` marker whose ``at`` is its own byte offset. A writer killed mid-record leaves a torn record;
 the next writer's marker follows it directly, so a reader that meets damage can search forward for a
-marker that names its own offset and go on reading after it (see ``watchtower.recording``).
+marker that names its own offset, or for the next record whose length and checksum hold, and go on
+reading there (see ``watchtower.recording``).
+
+A writer never writes a record a reader would reject: a message of more than ``MAX_PARTS`` frames or
+more than ``MAX_MESSAGE_BYTES`` bytes (the largest message the wire format admits) is not written but
+counted in ``RecordWriter.refused``; the collector counts it bad (``oversize-message``).
 """
 
 from __future__ import annotations
 
+import itertools
 import json
 import struct
 import time
 import zlib
 from pathlib import Path
 from typing import BinaryIO
+
+from agent import wire
 
 PREAMBLE = b"wtrace\x00\x01"
 META_LEN = struct.Struct("<I")
@@ -33,6 +41,29 @@ RESUME = struct.Struct("<I8sQqI")  # escape, magic, at, wall_ns, crc32
 RESUME_ESCAPE = 0xFFFF_FFFF  # where a record's body_len would be: no record is that long
 RESUME_MAGIC = b"wtresume"
 RESUME_PREFIX = RECORD.pack(RESUME_ESCAPE, 0)[:4] + RESUME_MAGIC
+MAX_PARTS = 64  # frames per record; a wire message has at most 4, a reader's resynchronisation trusts <= 64
+# The largest message the wire format admits: a STEP at its caps (a SCHEMA or NODE at theirs is smaller).
+MAX_MESSAGE_BYTES = (wire.HEADER.size + wire.STEP_META.size + 2 * 8 * wire.MAX_LAYERS
+                     + len(wire.EXCHANGE_COLUMNS) * 8 * wire.MAX_EXCHANGES)
+
+
+NOTE_MAGIC = b"wtnote\x00\x01"  # a record of one frame starting so is the collector's note, never a message
+
+
+def encode_note(note: dict) -> list[bytes]:
+    """The frames of a collector's note to its recording (handshakes it refused, a gap in recording): what
+    a reader of the file could not otherwise know. Not a wire message; readers that do not know it count it
+    bad, as any frame without the wire magic."""
+    return [NOTE_MAGIC + json.dumps(note, separators=(",", ":")).encode()]
+
+
+def is_note(frames: list[bytes] | list[memoryview]) -> bool:
+    return len(frames) == 1 and bytes(frames[0][: len(NOTE_MAGIC)]) == NOTE_MAGIC
+
+
+def fits(frames: list[bytes] | list[memoryview]) -> bool:
+    """Whether a message may be recorded: no more frames and bytes than any valid message could have."""
+    return len(frames) <= MAX_PARTS and sum(len(frame) for frame in frames) <= MAX_MESSAGE_BYTES
 
 
 def encode_record(time_ns: int, frames: list[bytes] | list[memoryview]) -> bytes:
@@ -57,6 +88,15 @@ def decode_resume(blob: bytes, at: int) -> bool:
         return False
     escape, magic, where, _, crc = RESUME.unpack(blob)
     return escape == RESUME_ESCAPE and magic == RESUME_MAGIC and where == at and zlib.crc32(blob[:-4]) == crc
+
+
+class WriteFailed(OSError):
+    """A write to the file failed (``__cause__`` is the OS error): ``written`` bytes of the batch reached the
+    file, holding ``whole`` complete records; ``lost`` records of the batch are not in it."""
+
+    def __init__(self, written: int, whole: int, lost: int) -> None:
+        super().__init__(f"write failed after {written} bytes")
+        self.written, self.whole, self.lost = written, whole, lost
 
 
 class NotARecording(ValueError):
@@ -95,16 +135,35 @@ class RecordWriter:
         else:
             self._file.write(encode_resume(at, time.time_ns()))
         self.records = 0
+        self.refused = 0  # messages too large to record (see ``fits``)
 
     def write(self, time_ns: int, frames: list[bytes] | list[memoryview]) -> None:
-        self._file.write(encode_record(time_ns, frames))
-        self.records += 1
+        self.write_many([(time_ns, frames)])
 
     def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
-        """Append several records with one write call (what a collector drains at once)."""
-        if batch:
-            self._file.write(b"".join(encode_record(t, frames) for t, frames in batch))
-            self.records += len(batch)
+        """Append several records with one write call (what a collector drains at once); a message that
+        does not ``fit`` is left out and counted in ``refused``. A failed write raises ``WriteFailed``
+        saying how many of the batch's records reached the file whole."""
+        blobs = [encode_record(t, frames) for t, frames in batch if fits(frames)]
+        self.refused += len(batch) - len(blobs)
+        if blobs:
+            done, error = self._write(b"".join(blobs))
+            whole = sum(1 for end in itertools.accumulate(map(len, blobs)) if end <= done)
+            self.records += whole
+            if error is not None:
+                raise WriteFailed(done, whole, len(blobs) - whole) from error
+
+    def _write(self, blob: bytes) -> tuple[int, OSError | None]:
+        """Write all of ``blob``; a short write is retried (the retry reports the real error, e.g. ENOSPC).
+        Returns the bytes that reached the file and the error that stopped it, if any."""
+        view, done = memoryview(blob), 0
+        try:
+            while done < len(blob):
+                n = self._file.write(view[done:])
+                done += len(blob) - done if n is None else n
+        except OSError as exc:
+            return done, exc
+        return done, None
 
     def close(self) -> None:
         self._file.close()

@@ -87,6 +87,7 @@ class WorkloadResult:
     steps: int
     dropped: int  # frames the probe could not queue
     frames: list[list[bytes]]  # the probe's frames when it published nowhere
+    refused: str | None = None  # why the collector refused this rank's probe, if it did
 
 
 def neighbours(rank: int, world: int) -> list[int]:
@@ -499,7 +500,8 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
                     for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
                         slab.absorb(halo)
             probe.end_step()
-    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)
+        refused = probe.refused()
+    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames, refused)
 
 
 GRAD_LAYER = "grad.allreduce"
@@ -540,4 +542,5 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
                 ring.allreduce(grad, step)
             slab.x[0] = grad[: SLAB] / world  # the next step depends on everyone's gradient
             probe.end_step()
-    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames)
+        refused = probe.refused()
+    return WorkloadResult(config.steps, probe.dropped, probe.sent_frames, refused)

@@ -16,6 +16,15 @@ def free_tcp_port() -> int:
         return sock.getsockname()[1]
 
 
+@pytest.fixture(autouse=True)
+def private_run_dir(tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Every test, and every process it starts, announces collectors in a run folder of its own, never in
+    the user's real one (where a console of theirs would find the test's collector)."""
+    folder = tmp_path_factory.mktemp("run")
+    folder.chmod(0o700)
+    monkeypatch.setenv("WATCHTOWER_RUN_DIR", str(folder))
+
+
 @pytest.fixture
 def endpoint() -> str:
     return f"tcp://127.0.0.1:{free_tcp_port()}"

@@ -13,6 +13,7 @@ import json
 import os
 import stat
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -74,6 +75,13 @@ class RunningCollector:
     listen: str
     security: dict[str, Any]
     started: float
+    socket: Path
+    job: str = ""
+    recorder: dict[str, Any] | None = None
+
+    def ask(self, context: zmq.Context | None = None) -> dict[str, Any] | None:
+        """The collector's answer now (None when it does not answer): e.g. its recorder's state."""
+        return _ask(context or zmq.Context.instance(), self.socket)
 
 
 def find_collectors(folder: Path | None = None, context: zmq.Context | None = None) -> list[RunningCollector]:
@@ -89,10 +97,46 @@ def find_collectors(folder: Path | None = None, context: zmq.Context | None = No
             continue
         try:
             found.append(RunningCollector(int(info["pid"]), Path(info["recording"]), str(info["listen"]),
-                                          dict(info["security"]), float(info["started"])))
+                                          dict(info["security"]), float(info["started"]), path,
+                                          str(info.get("job") or ""), info.get("recorder")))
         except (KeyError, TypeError, ValueError):
             continue  # not one of ours, or another version: leave it alone
     return sorted(found, key=lambda c: -c.started)
+
+
+def describe(found: RunningCollector) -> str:
+    """One line per collector for the picker: job, endpoint, when it started, what it records."""
+    started = time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(found.started))
+    return f"pid {found.pid}  job {found.job or '(not yet named)'}  {found.listen}  since {started}  {found.recording}"
+
+
+def choose(running: list[RunningCollector], *, pid: int | None = None, job: str | None = None,
+           ask: Callable[[str], str] | None = None) -> RunningCollector:
+    """The collector to attach to: the one ``pid`` or ``job`` names, the only one running, or the one the
+    user picks from a numbered list (``ask`` shows a prompt and returns the answer; None: not interactive,
+    so several candidates are a usage error that lists them)."""
+    where = f"in {run_dir()}"
+    if pid is not None:
+        running = [c for c in running if c.pid == pid]
+        if not running:
+            raise UsageError(f"no running 'watchtower collect' with pid {pid} {where}")
+    if job is not None:
+        running = [c for c in running if c.job == job]
+        if not running:
+            raise UsageError(f"no running 'watchtower collect' of job {job!r} {where}")
+    if not running:
+        raise UsageError(f"no running 'watchtower collect' found {where}; start one, or give --listen or --follow")
+    if len(running) == 1:
+        return running[0]
+    listing = [f"  {i}) {describe(c)}" for i, c in enumerate(running, start=1)]
+    if ask is None:
+        raise UsageError(f"{len(running)} collectors are running; choose one with --pid or --job: "
+                         + "; ".join(describe(c) for c in running))
+    answer = ask("\n".join([f"{len(running)} collectors are running:", *listing,
+                            f"attach to which (1-{len(running)})? "])).strip()
+    if not answer.isdigit() or not 1 <= int(answer) <= len(running):
+        raise UsageError(f"no collector chosen (expected a number from 1 to {len(running)}, got {answer!r})")
+    return running[int(answer) - 1]
 
 
 def _ask(ctx: zmq.Context, path: Path) -> dict[str, Any] | None:

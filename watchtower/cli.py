@@ -7,11 +7,13 @@ input errors), never a traceback.
 from __future__ import annotations
 
 import argparse
+import math
 import os
 import shutil
 import signal
 import sys
 import threading
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, NoReturn
@@ -47,8 +49,8 @@ def _positive(kind: type[int] | type[float]) -> Callable[[str], float]:
             value = kind(text)
         except ValueError:
             raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-        if value <= 0:
-            raise argparse.ArgumentTypeError(f"must be positive, got {text!r}")
+        if not math.isfinite(value) or value <= 0:
+            raise argparse.ArgumentTypeError(f"must be a finite number above zero, got {text!r}")
         return value
 
     parse.__name__ = kind.__name__
@@ -100,6 +102,8 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--listen", help="collect here in this process instead of attaching (an endpoint)")
     watch.add_argument("--record", type=Path, help="with --listen: also append to this recording")
     watch.add_argument("--follow", type=Path, help="follow this recording as a collector appends to it")
+    watch.add_argument("--pid", type=_positive(int), help="attach to the running collect with this process id")
+    watch.add_argument("--job", help="attach to the running collect of this job")
     watch.add_argument("--insecure", action="store_true",
                        help="with --listen: allow listening beyond loopback without keys")
     watch.add_argument("--keys", type=Path, metavar="DIR",
@@ -247,9 +251,20 @@ def _recorder(path: Path, meta: dict) -> Recorder:
         raise UsageError(str(exc)) from None
 
 
-def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: HeadKeys | None) -> Collector:
+def _refuse_job(record: Path | None) -> Callable[[str, str], None]:
+    def say(job: str, owner: str) -> None:
+        where = f"{record} belongs to" if record is not None else "this collector watches"
+        print(f"{PROG}: warning: refusing frames of job {job!r}: {where} job {owner!r} (one job per recording); "
+              "collect that job with its own --record", file=sys.stderr, flush=True)
+    return say
+
+
+def _collector(listen: str, ingest: Ingest, recorder: Recorder | None, keys: HeadKeys | None,
+               console: bool = False) -> Collector:
+    """``console``: a console draws on the terminal; refused jobs then show in its loss figures only."""
     try:
-        return Collector(listen, ingest, recorder, keys=keys)
+        return Collector(listen, ingest, recorder, keys=keys,
+                         on_foreign_job=None if console else _refuse_job(None if recorder is None else recorder.path))
     except EndpointError as exc:
         if recorder is not None:
             recorder.close()
@@ -263,26 +278,33 @@ def _run_console(feed: Feed, metrics: MetricsServer | None = None, settings: dic
         from watchtower.metrics import PublishingFeed
 
         feed = PublishingFeed(feed, metrics.metrics)
+    app = ConsoleApp(feed, **(settings or {}))
     try:
-        ConsoleApp(feed, **(settings or {})).run()
+        app.run()
     finally:
         if metrics is not None:
             metrics.close()
+    if app.ended:
+        print(f"{PROG}: error: {app.ended}", file=sys.stderr)
+        return 1
     return 0
 
 
 def _watch(args: argparse.Namespace) -> int:
-    from watchtower.attach import find_collectors, run_dir
+    from watchtower.attach import choose, find_collectors
     from watchtower.feeds import AttachFeed, LiveFeed
 
     cluster = _cluster(args.cluster)
+    if args.listen and (args.follow is not None or args.pid is not None or args.job is not None):
+        raise UsageError("--listen collects here; --follow, --pid and --job attach to a running collect: give one")
     if args.listen:
         security, keys = _listen(args.listen, args.insecure, args.keys)
         metrics = _metrics(args.metrics)
         try:
             recorder = None if args.record is None else _recorder(args.record, {"tool": "watchtower watch",
-                                                                                 "listen": args.listen})
-            collector = _collector(args.listen, Ingest(), recorder, keys)
+                                                                                 "listen": args.listen,
+                                                                                 "security": security})
+            collector = _collector(args.listen, Ingest(), recorder, keys, console=True)
         except UsageError:
             if metrics is not None:
                 metrics.close()
@@ -291,21 +313,29 @@ def _watch(args: argparse.Namespace) -> int:
         return _run_console(feed, metrics, _console_settings(args))
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
+    if args.follow is not None and (args.pid is not None or args.job is not None):
+        raise UsageError("--pid and --job choose a running collect; --follow names a recording: give one")
+    ask = None
     if args.follow is not None:
         recording, security = args.follow, None
     else:
-        running = find_collectors()
-        if not running:
-            raise UsageError(f"no running 'watchtower collect' found (looked in {run_dir()}); start one, "
-                             "or give --listen or --follow")
-        recording, security = running[0].recording, running[0].security
+        chosen = choose(find_collectors(), pid=args.pid, job=args.job, ask=_prompt if sys.stdin.isatty() else None)
+        recording, security, ask = chosen.recording, chosen.security, chosen.ask
     try:
-        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window)
+        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window, ask=ask)
     except OSError as exc:
         raise UsageError(f"cannot follow {recording}: {exc.strerror}") from None
     except RecordingError as exc:
         raise UsageError(f"cannot follow {recording}: {exc}") from None
     return _run_console(feed, _metrics(args.metrics), _console_settings(args))
+
+
+def _prompt(text: str) -> str:
+    print(text, end="", file=sys.stderr, flush=True)
+    try:
+        return input()
+    except EOFError:
+        return ""
 
 
 def _replay(args: argparse.Namespace) -> int:
@@ -349,7 +379,7 @@ def _collect(args: argparse.Namespace) -> int:
     metrics = _metrics(args.metrics)
     try:
         ingest = _resume(args.record)
-        recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen})
+        recorder = _recorder(args.record, {"tool": "watchtower collect", "listen": args.listen, "security": security})
         collector = _collector(args.listen, ingest, recorder, keys)
     except UsageError:
         if metrics is not None:
@@ -363,7 +393,7 @@ def _collect(args: argparse.Namespace) -> int:
           f"{args.record.resolve()}; Ctrl+C stops", file=sys.stderr, flush=True)
     tick = None
     if metrics is not None:
-        tick = _snapshot_tick(ingest, collector.bound, security, metrics)
+        tick = _snapshot_tick(ingest, collector.bound, security, metrics, recorder)
         print(f"{PROG} collect: metrics on {metrics.url}", file=sys.stderr, flush=True)
     try:
         collector.run(stop, args.duration, beacon, tick)
@@ -376,11 +406,15 @@ def _collect(args: argparse.Namespace) -> int:
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
           f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
           f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    if recorder.stops:
+        state = recorder.status()
+        print(f"{PROG} collect: {state['message'] or 'recording resumed'}; {recorder.stops} write failure(s), "
+              f"{recorder.unrecorded} messages received but not recorded (they count as missing on replay)")
     return 0
 
 
 def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
-                   metrics: MetricsServer) -> Callable[[], None]:
+                   metrics: MetricsServer, recorder: Recorder) -> Callable[[], None]:
     """For headless `collect`: a snapshot for the metrics every few seconds, built in the collector's loop."""
     from watchtower.metrics import COLLECT_PERIOD_S, Every
     from watchtower.snapshot import build_snapshot
@@ -389,7 +423,8 @@ def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],
 
     def publish() -> None:
         metrics.metrics.update(build_snapshot(ingest, cluster, source={"kind": "live", "where": bound},
-                                              security=security))
+                                              security=security, recorder=recorder.status(),
+                                              now_ns=time.time_ns()))
 
     return Every(COLLECT_PERIOD_S, publish)
 

@@ -3,12 +3,15 @@
 Agents connect out with DEALER sockets and send ``[b"", header, ...]``; a relay in between adds its own
 routing frames in front, so everything up to the first empty frame is the return address. Frames are
 appended to the recording before they are interpreted, so a frame that our decoder later rejects is still
-kept (and counted the same way on replay).
+kept (and counted the same way on replay). The one exception is a message larger than any valid message
+(``agent.records.fits``): it is counted bad (``oversize-message``) and neither recorded nor ingested, so
+a recording never holds a record its readers would refuse. Every second the collector also records an
+empty record, its clock tick: a recording then shows silence as time passing with nobody speaking.
 
 With keys (``watchtower.keys``) the socket is a CURVE server: traffic is encrypted, and a ZAP handler
 admits only agents whose public key is in the allow-list. A refused handshake never reaches the socket
 as a message, so a monitor on the socket counts each one in the ledger (``rejected`` by reason); they
-are not frames, so a recording does not hold them.
+are not frames, so the collector notes them in its recording (``agent.records.encode_note``) for readers.
 """
 
 from __future__ import annotations
@@ -27,12 +30,14 @@ from zmq.auth.thread import ThreadAuthenticator
 from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
+from agent.records import encode_note, fits, is_note
 from watchtower.attach import Beacon
 from watchtower.checkdir import CheckDirectory
 from watchtower.ingest import Ingest
 from watchtower.keys import AllowList, HeadKeys
 from watchtower.recording import Recorder
 
+TICK_S = 1.0  # how often the collector records its clock, so silence shows in a recording as time passing
 MAX_MESSAGE_BYTES = 64 << 20  # ZeroMQ drops peers that send more in one message (wire caps are far lower)
 DRAIN_BATCH = 4096
 
@@ -89,6 +94,13 @@ def refusal_reason(event: int, value: int) -> str:
     return "handshake"
 
 
+def _sender(frame: bytes) -> int | None:
+    """The sender id of a header frame without validating the rest (None if it is no header)."""
+    if wire.peek_kind(frame) is None:
+        return None
+    return int.from_bytes(frame[8:16], "little")
+
+
 def split_envelope(frames: list[bytes]) -> tuple[list[bytes], list[bytes]]:
     """Split a ROUTER message into (return address, payload) at the first empty frame."""
     for i, frame in enumerate(frames):
@@ -109,12 +121,15 @@ class Collector:
         context: zmq.Context | None = None,
         on_message: Callable[[int, list[bytes], wire.Message | None], None] | None = None,
         keys: HeadKeys | None = None,
+        on_foreign_job: Callable[[str, str], None] | None = None,
     ) -> None:
         self.endpoint = parse_endpoint(listen, binding=True)
         self.ingest = ingest
         self.recorder = recorder
         self.on_message = on_message
+        self.on_foreign_job = on_foreign_job  # (refused job, the recording's job): tell the user once per job
         self.sender = secrets.randbits(63)
+        self._next_tick = time.monotonic() + TICK_S
         self._seq = 0
         self.check_directory = CheckDirectory(ingest.store, self.sender)
         self._ctx = context or zmq.Context.instance()
@@ -148,9 +163,14 @@ class Collector:
     def _count_refusals(self) -> None:
         if self._monitor is None:
             return
+        refused: dict[str, int] = {}
         while self._monitor.poll(0):
             event = recv_monitor_message(self._monitor)
-            self.ingest.ledger.refuse(refusal_reason(event["event"], event["value"]))
+            reason = refusal_reason(event["event"], event["value"])
+            self.ingest.ledger.refuse(reason)
+            refused[reason] = refused.get(reason, 0) + 1
+        if refused and self.recorder is not None:  # handshakes are not frames: note them for readers of the file
+            self.recorder.write_many([(time.time_ns(), encode_note({"refused": refused}))])
 
     def drain(self, timeout_ms: int) -> int:
         """Wait up to ``timeout_ms`` for traffic, then take everything waiting (bounded batch)."""
@@ -166,6 +186,13 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
+            if frames and self.ingest.foreign(_sender(frames[0])):  # one job per recording
+                self.ingest.ledger.reject("other-job")
+                continue
+            if not frames or not fits(frames) or is_note(frames):  # would read back as a tick or a note
+                self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames)
+                                          else "oversize-message")
+                continue
             batch.append((received_ns, frames))
             if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
                 self._answer_ping(envelope, frames, received_ns)
@@ -173,10 +200,14 @@ class Collector:
                 self._answer_hello(envelope, frames, received_ns)
         if self.recorder is not None:
             self.recorder.write_many(batch)
+        known = len(self.ingest.foreign_jobs)
         for received_ns, frames in batch:
             message = self.ingest.feed(received_ns, frames)
             if self.on_message is not None:
                 self.on_message(received_ns, frames, message)
+        if len(self.ingest.foreign_jobs) > known and self.on_foreign_job is not None:
+            for job in list(self.ingest.foreign_jobs)[known:]:
+                self.on_foreign_job(job, self.ingest.store.job)
         return len(batch)
 
     def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:
@@ -219,10 +250,25 @@ class Collector:
                     break
                 timeout = max(1, min(timeout, int(left * 1000)))
             if beacon is not None:
+                beacon.info["job"] = self.ingest.store.job
+                if self.recorder is not None:
+                    beacon.info["recorder"] = self.recorder.status()
                 beacon.answer()
             self.drain(timeout)
+            self.tick()
             if tick is not None:
                 tick()
+
+    def tick(self) -> None:
+        """Every ``TICK_S``: record the clock (an empty record) and move the ingest's "now", so ages keep
+        growing in silence, in this process and in a recording."""
+        if time.monotonic() < self._next_tick:
+            return
+        self._next_tick = time.monotonic() + TICK_S
+        now = time.time_ns()
+        self.ingest.feed(now, [])
+        if self.recorder is not None:
+            self.recorder.write_many([(now, [])])
 
     def close(self) -> None:
         self._close_sockets()

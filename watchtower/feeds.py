@@ -16,12 +16,13 @@ from typing import Any
 from agent import wire
 from watchtower.cluster import Cluster
 from watchtower.collector import Collector
-from watchtower.console.feed import Deliver
+from watchtower.console.feed import Deliver, FeedEnded
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader, Tail, read_meta, resume_records
 from watchtower.snapshot import build_snapshot, cluster_for
 
 SNAPSHOT_PERIOD_S = 0.25
+ASK_PERIOD_S = 1.0  # how often an attached console asks its collector for what the file cannot say
 CONSOLE_WINDOW_STEPS = 120  # the console's figures cover the recent steps, so a change shows soon
 
 
@@ -30,8 +31,9 @@ class _Snapshots:
 
     def __init__(self, ingest: Ingest, cluster: Cluster | None, meta: dict, source: dict[str, str],
                  security: dict[str, Any] | None, window_steps: int | None, period_s: float,
-                 clock: Callable[[], float]) -> None:
+                 clock: Callable[[], float], wall: Callable[[], int] | None = None) -> None:
         self.ingest, self.meta, self.source, self.security = ingest, meta, source, security
+        self.wall = wall  # live sources: ages are measured against the wall clock, growing while nobody speaks
         self.cluster = cluster_for(meta, cluster)
         self.window_steps, self.period_s, self.clock = window_steps, period_s, clock
         self._last = -float("inf")
@@ -39,10 +41,11 @@ class _Snapshots:
     def due(self) -> bool:
         return self.clock() - self._last >= self.period_s
 
-    def build(self, replay: dict[str, Any] | None = None) -> dict[str, Any]:
+    def build(self, replay: dict[str, Any] | None = None, recorder: dict[str, Any] | None = None) -> dict[str, Any]:
         self._last = self.clock()
         return build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
-                              security=self.security, window_steps=self.window_steps, replay=replay)
+                              security=self.security, window_steps=self.window_steps, replay=replay,
+                              recorder=recorder, now_ns=None if self.wall is None else self.wall())
 
 
 class LiveFeed:
@@ -56,17 +59,22 @@ class LiveFeed:
         self.collector = collector
         self._stop = threading.Event()
         self._snapshots = _Snapshots(collector.ingest, cluster, {}, {"kind": "live", "where": collector.bound},
-                                     security, window_steps, period_s, clock)
+                                     security, window_steps, period_s, clock, time.time_ns)
 
     def start(self, deliver: Deliver) -> None:
-        deliver(self._snapshots.build())
+        deliver(self._snapshots.build(recorder=self._recorder()))
         try:
             while not self._stop.is_set():
                 self.collector.drain(50)
+                self.collector.tick()
                 if self._snapshots.due():
-                    deliver(self._snapshots.build())
+                    deliver(self._snapshots.build(recorder=self._recorder()))
         finally:
             self.collector.close()
+
+    def _recorder(self) -> dict[str, Any] | None:
+        recorder = self.collector.recorder
+        return None if recorder is None else recorder.status()
 
     def stop(self) -> None:
         self._stop.set()
@@ -83,27 +91,47 @@ class AttachFeed:
 
     def __init__(self, recording: Path, *, security: dict[str, Any] | None, cluster: Cluster | None = None,
                  window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
-                 poll_s: float = 0.1, clock: Callable[[], float] = time.monotonic) -> None:
+                 poll_s: float = 0.1, clock: Callable[[], float] = time.monotonic,
+                 ask: Callable[[], dict[str, Any] | None] | None = None) -> None:
         self.recording = recording
         self.poll_s = poll_s
+        self._ask, self._asked, self._recorder = ask, -float("inf"), None
+        self.clock = clock
         self._stop = threading.Event()
         with open(recording, "rb") as stream:
             meta = read_meta(stream)
             self._offset = stream.tell()
         self.ingest = Ingest()
         self._snapshots = _Snapshots(self.ingest, cluster, meta, {"kind": "attached", "where": str(recording)},
-                                     security, window_steps, period_s, clock)
+                                     security, window_steps, period_s, clock, time.time_ns)
 
     def start(self, deliver: Deliver) -> None:
         while not self._stop.is_set():
             self.catch_up()
-            deliver(self._snapshots.build())
+            deliver(self._snapshots.build(recorder=self._recorder_state()))
             self._stop.wait(max(self.poll_s, self._snapshots.period_s))
 
+    def _recorder_state(self) -> dict[str, Any] | None:
+        """The collector's recorder state (a full disk does not show in the file), asked at most once a
+        second; the last answer stands while the collector does not answer."""
+        if self._ask is not None and self.clock() - self._asked >= ASK_PERIOD_S:
+            self._asked = self.clock()
+            info = self._ask()
+            if info is not None:
+                self._recorder = info.get("recorder")
+        return self._recorder
+
     def catch_up(self) -> int:
-        """Ingest every complete record appended since the last call; returns how many."""
-        tail = Tail(consumed=self._offset)
-        count = self.ingest.feed_all(resume_records(self.recording, tail))
+        """Ingest every complete record appended since the last call; returns how many. Raises
+        ``FeedEnded`` when the recording is gone or was cut shorter than what was read."""
+        try:
+            if self.recording.stat().st_size < self._offset:
+                raise FeedEnded(f"the recording {self.recording} was truncated while being followed")
+            tail = Tail(consumed=self._offset)
+            count = self.ingest.feed_all(resume_records(self.recording, tail))
+        except OSError as exc:
+            raise FeedEnded(f"the recording {self.recording} is gone ({exc.strerror}); "
+                            "was its collector stopped and the file removed?") from None
         self._offset = tail.consumed  # a half-written last record is read again next time, whole
         return count
 

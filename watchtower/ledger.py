@@ -24,6 +24,7 @@ class SenderLedger:
     missing: int = 0
     duplicates: int = 0
     dropped_at_sender: int = 0  # the sender's own running count, from its step frames
+    last_ns: int = 0  # when its newest frame was received: how far its numbers can have moved since
     gaps: set[int] = field(default_factory=set)
 
     def accept(self, seq: int) -> bool:
@@ -56,10 +57,11 @@ class Ledger:
     bad: Counter[str] = field(default_factory=Counter)
     rejected: Counter[str] = field(default_factory=Counter)
 
-    def accept(self, sender: int, seq: int) -> bool:
+    def accept(self, sender: int, seq: int, received_ns: int = 0) -> bool:
         ledger = self.senders.get(sender)
         if ledger is None:
             ledger = self.senders[sender] = SenderLedger()
+        ledger.last_ns = max(ledger.last_ns, received_ns)
         return ledger.accept(seq)
 
     def reject(self, reason: str) -> None:

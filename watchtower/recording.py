@@ -7,35 +7,47 @@ The layout and the writer live in ``agent/records.py`` (a probe's spool uses the
     resume := a 32-byte marker a restarted writer appends, naming its own byte offset
 
 Each record is written with one ``write`` on an unbuffered file, so a crash of the writer loses at most
-the record being written. The reader streams records. At a torn or corrupt record it searches forward for
-a resume marker that names its own offset: a collector killed mid-record and restarted leaves exactly
-that, and reading goes on after the marker, the skipped bytes reported in ``Tail.skipped``. Without such
-a marker it stops, reporting the byte offset where the trouble starts; everything before it is delivered.
+the record being written. The reader streams records. At a torn, corrupt or implausible record it scans
+forward for the next place where reading can safely go on: a resume marker that names its own offset (a
+collector killed mid-record and restarted leaves one), or a record whose length, frame layout and CRC-32
+all check out. Reading goes on there and the bytes stepped over are reported in ``Tail.skipped``; so
+damage costs the damaged records and nothing else. When nothing intact follows (a torn tail, or a file
+still being written) it stops, reporting the byte offset where the trouble starts.
 """
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import gzip
+import io
 import json
+import os
+import time
 import zlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import BinaryIO
+from typing import Any, BinaryIO
+
+import numpy as np
 
 from agent.records import (
     BODY,
+    MAX_PARTS,
     META_LEN,
     PART,
     PREAMBLE,
     RECORD,
     RESUME,
     RESUME_ESCAPE,
-    RESUME_PREFIX,
     NotARecording,
     RecordWriter,
+    WriteFailed,
     decode_resume,
+    encode_note,
     encode_record,
+    encode_resume,
 )
 
 __all__ = ["PREAMBLE", "NotARecording", "Recorder", "RecordingError", "RecordingReader", "Skip", "Tail",
@@ -43,7 +55,9 @@ __all__ = ["PREAMBLE", "NotARecording", "Recorder", "RecordingError", "Recording
 
 MAX_META = 1 << 20
 MAX_RECORD = 64 << 20  # far above any valid frame set (wire caps), far below a torn length field
-SCAN_CHUNK = 1 << 20  # bytes read at a time while searching for a resume marker after damage
+SCAN_CHUNK = 1 << 20  # bytes read at a time while searching for a place to go on after damage
+SYNC_WINDOW = RECORD.size + BODY.size  # bytes needed to tell whether a record could start at an offset
+RETRY_S = 1.0  # after a failed write, how often recording tries to go on
 RESUMED = "resumed"  # what _next answers for an intact resume marker
 
 
@@ -53,12 +67,78 @@ class RecordingError(ValueError):
 
 class Recorder(RecordWriter):
     """Appends records to a recording; writes the preamble first if the file or stream is empty, and a
-    resume marker first if it already holds data (a restart after a crash)."""
+    resume marker first if it already holds data (a restart after a crash).
+
+    A failed write (a full disk) is a state, not a crash: recording stops, ``status`` says where and why,
+    and messages that arrive meanwhile are counted in ``unrecorded`` (the collector goes on ingesting and
+    serving them). Every ``retry_s`` the next batch first tries a resume marker at the file's end; once it
+    is written (space came back) recording goes on after it, and a reader steps over any torn record the
+    failure left to that marker.
+    """
+
+    def __init__(self, target: str | Path | BinaryIO, meta: dict | None = None, *, retry_s: float = RETRY_S,
+                 clock: Callable[[], float] = time.monotonic) -> None:
+        super().__init__(target, meta)
+        self.retry_s, self.clock = retry_s, clock
+        self.unrecorded = 0  # messages that arrived while recording was stopped, or were lost in a failed write
+        self.stopped_at: int | None = None  # the file's size when a write failed
+        self.stop_reason = ""
+        self.stops = 0
+        self._retry_at = 0.0
+        self._unrecorded_before = 0
+
+    def write_many(self, batch: list[tuple[int, list[bytes]]]) -> None:
+        if self.stopped_at is not None and not self._resume():
+            self.unrecorded += len(batch)
+            return
+        try:
+            super().write_many(batch)
+        except WriteFailed as exc:
+            self._stop(exc.__cause__)
+            self.unrecorded += exc.lost
+
+    def _stop(self, error: BaseException | None) -> None:
+        self.stopped_at = self._size()
+        code = getattr(error, "errno", None)
+        self.stop_reason = "disk full" if code == errno.ENOSPC else (getattr(error, "strerror", None) or "write failed")
+        self._unrecorded_before = self.unrecorded
+        self.stops += 1
+        self._retry_at = self.clock() + self.retry_s
+
+    def _resume(self) -> bool:
+        """Try to go on recording: True once a resume marker is written at the file's end."""
+        if self.clock() < self._retry_at:
+            return False
+        at = self._size()
+        _, error = self._write(encode_resume(at, time.time_ns()))
+        if error is not None:
+            self._retry_at = self.clock() + self.retry_s
+            return False
+        gap = {"stopped_at": self.stopped_at, "reason": self.stop_reason, "resumed_at": at,
+               "unrecorded": self.unrecorded - self._unrecorded_before}
+        self.stopped_at, self.stop_reason = None, ""
+        with contextlib.suppress(WriteFailed):  # the note is a courtesy to readers; the marker is what counts
+            super().write_many([(time.time_ns(), encode_note({"recording_gap": gap}))])
+        return True
+
+    def _size(self) -> int:
+        try:
+            return os.fstat(self._file.fileno()).st_size
+        except (OSError, ValueError, io.UnsupportedOperation):
+            return self._file.tell()
+
+    def status(self) -> dict[str, Any]:
+        """The recording's state for snapshots: ``recording`` or ``stopped`` (where, why), and the count of
+        messages not recorded."""
+        stopped = self.stopped_at is not None
+        return {"state": "stopped" if stopped else "recording", "stopped_at": self.stopped_at,
+                "reason": self.stop_reason or None, "unrecorded": self.unrecorded, "stops": self.stops,
+                "message": f"recording stopped: {self.stop_reason} at byte {self.stopped_at}" if stopped else None}
 
 
 @dataclass(frozen=True)
 class Skip:
-    """Bytes stepped over: damage at ``start`` up to the resume marker at ``end``."""
+    """Bytes stepped over: damage at ``start`` up to the intact record or resume marker at ``end``."""
 
     start: int
     end: int
@@ -83,9 +163,12 @@ class Tail:
     def clean(self) -> bool:
         return self.offset is None and not self.skipped
 
+    @property
+    def skipped_bytes(self) -> int:
+        return sum(s.end - s.start for s in self.skipped)
+
     def describe(self) -> str:
-        skipped = "".join(f"; skipped bytes {s.start}-{s.end} ({s.reason}) up to a writer restart"
-                          for s in self.skipped)
+        skipped = "".join(f"; skipped bytes {s.start}-{s.end} ({s.reason})" for s in self.skipped)
         if self.offset is None:
             return f"{self.records} records, complete" if not skipped else f"{self.records} records{skipped}"
         return f"{self.records} complete records{skipped}; stopped at byte {self.offset}: {self.reason}"
@@ -185,29 +268,64 @@ def _next(source: _Source, head: bytes, tail: Tail) -> tuple[str | None, bytes]:
 
 
 def _resync(source: _Source, seen: bytes, tail: Tail, reason: str) -> bool:
-    """After damage at ``tail.consumed`` (``seen`` = the bytes read from there), look for a resume marker
-    that names its own offset; if one is found, note the skip and continue after it. Reads at most
-    ``SCAN_CHUNK`` bytes at a time, so a long damaged stretch costs time, not memory."""
+    """After damage at ``tail.consumed`` (``seen`` = the bytes read from there), find the first later offset
+    holding an intact resume marker that names its own offset, or an intact record; note the skip and
+    return True with the source positioned there. Reads ``SCAN_CHUNK`` bytes at a time and keeps only
+    what a candidate needs, so a long damaged stretch costs time, not memory."""
     start = tail.consumed
     base, data = start + 1, seen[1:]
     while True:
-        i = data.find(RESUME_PREFIX)
-        if i < 0:
-            keep = len(RESUME_PREFIX) - 1
-            base, data = base + max(0, len(data) - keep), data[-keep:]
-        elif len(data) - i >= RESUME.size:
-            if decode_resume(data[i:i + RESUME.size], base + i):
+        if len(data) < SYNC_WINDOW:
+            more = source.read(SCAN_CHUNK)
+            if not more:
+                return False
+            data += more
+            continue
+        limit = len(data) - SYNC_WINDOW + 1
+        for i in _candidates(data, limit):
+            found, data = _intact_at(source, data, i, base + i)
+            if found is None:
+                continue
+            tail.skipped.append(Skip(start, base + i, reason))
+            if found == RESUMED:
                 source.unread(data[i + RESUME.size:])
-                tail.skipped.append(Skip(start, base + i, reason))
                 tail.resumes += 1
                 tail.consumed = base + i + RESUME.size
-                return True
-            base, data = base + i + 1, data[i + 1:]
-            continue
-        more = source.read(SCAN_CHUNK)
+            else:
+                source.unread(data[i:])
+                tail.consumed = base + i
+            return True
+        base, data = base + limit, data[limit:]
+
+
+def _candidates(data: bytes, limit: int) -> list[int]:
+    """Offsets below ``limit`` where a resume marker or a record could start: a plausible length (or the
+    marker's escape) and, for a record, a plausible frame count. Vectorised: most offsets fail at once."""
+    a = np.frombuffer(data, dtype=np.uint8)
+    length = (a[0:limit].astype(np.uint32) | a[1:limit + 1].astype(np.uint32) << 8
+              | a[2:limit + 2].astype(np.uint32) << 16 | a[3:limit + 3].astype(np.uint32) << 24)
+    at = RECORD.size + BODY.size - 2  # n_parts, the body's last field
+    parts = a[at:limit + at].astype(np.uint16) | a[at + 1:limit + at + 1].astype(np.uint16) << 8
+    record = (length >= BODY.size) & (length <= MAX_RECORD) & (parts <= MAX_PARTS)
+    return np.flatnonzero(record | (length == RESUME_ESCAPE)).tolist()
+
+
+def _intact_at(source: _Source, data: bytes, i: int, offset: int) -> tuple[str | None, bytes]:
+    """Whether an intact resume marker (``RESUMED``) or record (``"record"``) starts at ``data[i]`` (file
+    byte ``offset``), reading more into ``data`` as the candidate needs; returns the verdict and ``data``."""
+    body_len, crc = RECORD.unpack_from(data, i)
+    need = i + (RESUME.size if body_len == RESUME_ESCAPE else RECORD.size + body_len)
+    while len(data) < need:
+        more = source.read(need - len(data))
         if not more:
-            return False
+            return None, data
         data += more
+    if body_len == RESUME_ESCAPE:
+        return (RESUMED if decode_resume(data[i:need], offset) else None), data
+    body = data[i + RECORD.size:need]
+    if zlib.crc32(body) != crc or _split_body(body) is None:
+        return None, data
+    return "record", data
 
 
 def resume_records(path: str | Path, tail: Tail) -> Iterator[tuple[int, list[bytes]]]:

@@ -37,7 +37,9 @@ def load_recording(path: Path, cluster: Cluster | None, window: int | None) -> d
     snapshot = build_snapshot(ingest, cluster_for(meta, cluster), source={"kind": "recording", "where": str(path)},
                               meta=meta, window_steps=window)
     snapshot["recording"] = {"records": tail.records, "complete": tail.clean, "torn_at": tail.offset,
-                             "reason": tail.reason or None}
+                             "reason": tail.reason or None, "skipped_bytes": tail.skipped_bytes,
+                             "resumes": tail.resumes,
+                             "skipped": [{"start": s.start, "end": s.end, "reason": s.reason} for s in tail.skipped]}
     return snapshot
 
 
@@ -54,7 +56,12 @@ def run_report(paths: list[Path], *, output: str, cluster: Cluster | None, windo
         raise UsageError(f"--format csv prints one table: give --table {' | '.join(tables)}{given}")
     snapshots = [load_recording(path, cluster, window) for path in paths]
     for path, snapshot in zip(paths, snapshots, strict=True):
-        if not snapshot["recording"]["complete"]:
+        skipped = snapshot["recording"]["skipped"]
+        if skipped:
+            print(f"watchtower: warning: {path}: stepped over {snapshot['recording']['skipped_bytes']} damaged "
+                  f"bytes in {len(skipped)} place(s), first at byte {skipped[0]['start']} ({skipped[0]['reason']}); "
+                  "every intact record around them is read", file=sys.stderr)
+        if snapshot["recording"]["torn_at"] is not None:
             print(f"watchtower: warning: {path}: stopped at byte {snapshot['recording']['torn_at']} "
                   f"({snapshot['recording']['reason']}); figures cover the complete records before it",
                   file=sys.stderr)

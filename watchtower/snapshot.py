@@ -20,6 +20,11 @@ from watchtower.ingest import Ingest
 from watchtower.store import NodeInfo
 
 TREND_POINTS = 60
+# A rank is silent when its newest step is older than SILENT_STEPS of its own step times, and at least
+# SILENT_MIN_S (frames travel in batches and snapshots come every quarter second): common practice, no source.
+SILENT_STEPS = 5
+SILENT_MIN_S = 2.0
+NODE_SILENT_S = 10.0  # a node without ranks (its daemon samples every second by default) is silent after this
 WORST_RANKS = 5
 LOOPBACK_NIC = "lo"
 
@@ -46,7 +51,11 @@ def build_snapshot(
     security: dict[str, Any] | None = None,
     window_steps: int | None = None,
     replay: dict[str, Any] | None = None,
+    recorder: dict[str, Any] | None = None,
+    now_ns: int | None = None,
 ) -> dict[str, Any]:
+    """``now_ns``: the wall clock when live (ages grow while nobody speaks); a recording's own clock (the
+    newest record, the collector's ticks included) when None."""
     store = ingest.store
     meta = meta or {}
     history = store.window()  # every step still held, for degradation; the figures cover its newest steps
@@ -59,7 +68,9 @@ def build_snapshot(
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)
     straggler_nodes = {s["node"] for s in snapshot["stragglers"]}
-    now_ns = ingest.last_received_ns
+    now_ns = ingest.last_received_ns if now_ns is None else max(now_ns, ingest.last_received_ns)
+    liveness = _liveness(ingest, now_ns)
+    silent_ranks = set(liveness["silent_ranks"])
     worst = worst_ranks(window, WORST_RANKS)
     node_names = window.nodes
     rank_node = dict(zip(window.ranks.tolist(), window.rank_node.tolist(), strict=True))
@@ -87,28 +98,106 @@ def build_snapshot(
         "world": store.world,
         "steps": store.steps_seen,
         "last_step": store.last_step,
-        "steps_per_s": None if not recent else 1.0 / recent,
+        "steps_per_s": _rate(recent, liveness),
+        "liveness": liveness,
         "nodes": [
             {"name": node.name, "ranks": ranks_by_node.get(i, []), "cpu_percent": _f(node.cpu_percent),
              "memory_percent": _f(node.memory_percent), **_nic_rates(node.nics, node.nic_values),
              "clock_offset_s": None if node.offset_ns is None else node.offset_ns * 1e-9,
              "last_heard_s": None if not node.last_heard_ns else max(0.0, (now_ns - node.last_heard_ns) * 1e-9),
+             "silent": _node_silent(ranks_by_node.get(i, []), silent_ranks, node.last_heard_ns, now_ns),
              "straggler": node.name in straggler_nodes}
             for i, node in enumerate(store.nodes)
         ],
         "step_time": {"recent_s": recent, "trend": [_f(x) for x in trend]},
         "loss": ingest.ledger.as_json(),
-        "security": security or {"mode": "loopback", "warning": None},
+        "security": _security(security, meta),
         "replay": replay,
         "checks": None if not len(checks) else {
             "results": len(checks), "period_s": _f(checks.period_s), "budget": _f(checks.budget),
             "deferred": checks.deferred},
+        "recorder": recorder,
+        "recording_gaps": ingest.recording_gaps,
         "run_totals": {"layers": [
             {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
             for i, name in enumerate(store.layers)
         ]},
     })
+    if liveness["stalled"]:
+        snapshot["eta_s"] = None
+    snapshot["alerts"] = snapshot["alerts"] + _silence_alerts(liveness, store.job or cluster.name)
     return snapshot
+
+
+def _security(given: dict[str, Any] | None, meta: dict) -> dict[str, Any]:
+    """The transport mode in force: the live collector's, else what the recording's collector noted in its
+    metadata, else "unknown" (never a guess)."""
+    if given is not None:
+        return given
+    noted = meta.get("security")
+    if isinstance(noted, dict) and noted.get("mode") in ("loopback", "keys", "insecure"):
+        return {"mode": noted["mode"], "warning": noted.get("warning") if isinstance(noted.get("warning"), str)
+                else None}
+    return {"mode": "unknown", "warning": None}
+
+
+def _liveness(ingest: Ingest, now_ns: int) -> dict[str, Any]:
+    """Each rank's age (now minus its newest step's arrival) and whether it is silent; the job is stalled
+    when every rank is. ``stopped_early``: silent ranks behind the job's newest step, with the step they
+    stopped at."""
+    store = ingest.store
+    ranks = []
+    for rank, info in sorted(store.ranks.items()):
+        if not info.last_heard_ns:
+            continue
+        age = max(0.0, (now_ns - info.last_heard_ns) * 1e-9)
+        limit = max(SILENT_STEPS * info.step_s, SILENT_MIN_S)
+        ranks.append({"rank": rank, "node": store.nodes[info.node].name, "age_s": age, "last_step": info.last_step,
+                      "step_s": info.step_s, "silent_after_s": limit, "silent": age > limit})
+    newest = max((info.last_heard_ns for info in store.ranks.values()), default=0)
+    silent = [r["rank"] for r in ranks if r["silent"]]
+    return {
+        "now_ns": now_ns,
+        "age_s": None if not newest else max(0.0, (now_ns - newest) * 1e-9),
+        "ranks": ranks,
+        "silent_ranks": silent,
+        "stalled": bool(ranks) and len(silent) == len(ranks),
+        "stopped_early": [{"rank": r["rank"], "node": r["node"], "last_step": r["last_step"]}
+                          for r in ranks if r["silent"] and r["last_step"] < store.last_step],
+    }
+
+
+def _rate(recent_s: float | None, liveness: dict[str, Any]) -> float | None:
+    """Steps per second: 0 once stalled; decaying as 1 / (time since the newest step) once that exceeds
+    two recent step times, so a rate never freezes at its last value while nobody speaks."""
+    if liveness["stalled"]:
+        return 0.0
+    if not recent_s:
+        return None
+    age = liveness["age_s"] or 0.0
+    return 1.0 / (age if age > 2 * recent_s else recent_s)
+
+
+def _node_silent(ranks: list[int], silent_ranks: set[int], last_heard_ns: int, now_ns: int) -> bool:
+    if ranks:
+        return all(rank in silent_ranks for rank in ranks)
+    return bool(last_heard_ns) and (now_ns - last_heard_ns) * 1e-9 > NODE_SILENT_S
+
+
+def _silence_alerts(liveness: dict[str, Any], job: str) -> list[dict[str, Any]]:
+    """``rank-silent`` per silent rank and ``job-stalled`` when no rank advances; they clear by themselves
+    when a rank speaks again (every snapshot recomputes them)."""
+    alerts = [{"kind": "rank-silent", "subject": f"rank {r['rank']}", "step_began": r["last_step"],
+               "step_detected": r["last_step"], "port": None,
+               "message": f"rank {r['rank']} on {r['node']} silent for {r['age_s']:.0f} s since step {r['last_step']} "
+                          f"(its steps take {r['step_s']:.3g} s; silent after {r['silent_after_s']:.3g} s)"}
+              for r in liveness["ranks"] if r["silent"]]
+    if liveness["stalled"]:
+        newest = max(r["last_step"] for r in liveness["ranks"])
+        alerts.append({"kind": "job-stalled", "subject": job or "job", "step_began": newest, "step_detected": newest,
+                       "port": None, "message": f"no rank has advanced for {liveness['age_s']:.0f} s "
+                                                f"(newest step {newest})"})
+    return alerts
 
 
 def _window_nics(nodes: list[NodeInfo], names: tuple[str, ...]) -> np.ndarray:

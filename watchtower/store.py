@@ -34,6 +34,8 @@ class RankInfo:
     round_trip_ns: int | None = None
     last_wall_ns: int = 0
     last_step: int = -1
+    last_heard_ns: int = 0  # collector clock when its newest step arrived
+    step_s: float = 0.0  # its newest step's duration: what "silent for a few of its own steps" is measured in
 
 
 @dataclass
@@ -218,6 +220,7 @@ class Store:
             return False
         info.last_wall_ns = message.header.wall_ns
         info.last_step = max(info.last_step, message.step)
+        info.last_heard_ns, info.step_s = received_ns, message.duration_ns * NS
         self.nodes[info.node].last_heard_ns = received_ns
         row = self._row[rank]
         slab = self._slab(message.step)

@@ -116,8 +116,25 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
         for a in sorted(s["alerts"], key=_alert_order):
             out += _wrap(f"  step {a['step_detected']} (began ~{a['step_began']}): {visible(a['message'])}", width,
                          indent="    ")
+    early = s.get("liveness", {}).get("stopped_early", [])
+    if early:
+        out += ["", *_wrap("ranks that stopped early: " + ", ".join(
+            f"rank {r['rank']} on {visible(r['node'])} at step {r['last_step']}" for r in early), width)]
+    for gap in s.get("recording_gaps", []):
+        out += ["", *_wrap(f"recording stopped: {gap['reason']} at byte {gap['stopped_at']}; {gap['unrecorded']} "
+                           f"messages not recorded; resumed at byte {gap['resumed_at']}", width)]
+    security = s.get("security", {})
+    loss = s.get("loss", {})
+    out += ["", *_wrap(f"transport: {security.get('mode')}; refused handshakes: {loss.get('rejected', 0)}"
+                       + "".join(f", {reason} {n}" for reason, n in loss.get("rejected_reasons", {}).items()), width)]
+    recorder = s.get("recorder")
+    if recorder and recorder.get("message"):
+        out += ["", *_wrap(f"{recorder['message']}; {recorder['unrecorded']} messages not recorded", width)]
     recording = s.get("recording")
-    if recording and not recording["complete"]:
+    if recording and recording.get("skipped_bytes"):
+        out += ["", *_wrap(f"recording damaged: {recording['skipped_bytes']} bytes stepped over, intact records kept",
+                           width)]
+    if recording and recording["torn_at"] is not None:
         out += ["", *_wrap(f"recording stopped at byte {recording['torn_at']}: {recording['reason']}", width)]
     return "\n".join(out)
 

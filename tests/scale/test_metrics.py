@@ -63,7 +63,7 @@ def test_scrape_says_what_the_snapshot_says(snapshot: dict[str, Any], server: Me
     def value(name: str, **labels: str) -> float:
         return got[f"watchtower_{name}", tuple(sorted(labels.items()))]
 
-    assert value("job", job=snapshot["job"], security="loopback") == 1
+    assert value("job", job=snapshot["job"], security=snapshot["security"]["mode"]) == 1
     assert value("ranks") == snapshot["ranks"] and value("last_step") == snapshot["last_step"]
     assert value("steps_total") == snapshot["steps"]
     assert value("step_seconds") == pytest.approx(snapshot["step_time"]["recent_s"])

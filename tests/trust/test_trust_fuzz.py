@@ -18,6 +18,7 @@ from hypothesis import strategies as st
 from trust_helpers import ingest, wait_for
 
 from agent import wire
+from watchtower import ingest as ingest_mod
 from watchtower.collector import Collector
 from watchtower.console.format import literal
 from watchtower.ingest import Ingest
@@ -30,7 +31,8 @@ SENDER = 77
 UNSAFE = {"Cc", "Cf", "Zl", "Zp"}  # control and format characters, line and paragraph separators
 REASONS = {"empty", "bad-header-size", "bad-magic", "bad-version", "bad-kind", "bad-part-count", "bad-meta-size",
            "bad-length", "oversize", "bad-text", "bad-name", "bad-schema", "bad-step", "bad-timing", "bad-exchange",
-           "bad-sample", "bad-check", "unexpected-kind", "unknown-schema"}
+           "bad-sample", "bad-check", "unexpected-kind", "unknown-schema", "implausible-time", "implausible-step",
+           "implausible-seq", "implausible-bytes", "bad-note"}
 
 
 def header(kind: int, seq: int, count_a: int, count_b: int, magic: bytes = wire.MAGIC, version: int = 1) -> bytes:
@@ -49,6 +51,9 @@ def feed_checked(state: Ingest, frames: list[bytes]) -> wire.Message | None:
     message = state.feed(1, frames)
     after = (ledger.frames, ledger.duplicates, ledger.bad_total)
     moved = [b - a for a, b in zip(before, after, strict=True)]
+    if not frames:  # a record without frames is the collector's clock tick (the collector refuses empty messages)
+        assert moved == [0, 0, 0] and message is None
+        return message
     # a STEP whose schema is unknown is delivered by sequence *and* rejected: it counts in both
     assert sum(moved) in (1, 2) and all(m in (0, 1) for m in moved), moved
     assert set(ledger.bad) <= REASONS
@@ -120,6 +125,8 @@ def test_hostile_steps_are_rejected_or_stored_sanely(steps: list[list[bytes]]) -
             assert message.duration_ns >= 0 and (message.layer_ns >= 0).all()
             ex = message.exchanges
             assert (ex[wire.X_END] >= ex[wire.X_START]).all() and (ex[wire.X_NBYTES] >= 0).all()
+            assert message.duration_ns <= ingest_mod.TIME_GRACE_NS and message.step <= ingest_mod.MAX_STEP
+            assert (ex[wire.X_NBYTES] <= ingest_mod.MAX_EXCHANGE_BYTES).all()
     state.store.window()
     state.store.series()
 
@@ -156,9 +163,12 @@ def test_node_figures_nan_inf_and_negative(cpu: float, memory: float, interval: 
     message = feed_checked(state, frames)
     sane = all(math.isfinite(x) for x in (cpu, memory, interval)) and interval > 0 and \
         all(math.isfinite(x) and x >= 0 for x in nic)
-    assert (message is not None) == sane
+    plausible = max(nic[:2]) <= ingest_mod.MAX_NIC_BPS  # faster than any interface: counted bad, not shown
+    assert (message is not None) == (sane and plausible)
     if not sane:
         assert state.ledger.bad == {"bad-sample": 1}
+    elif not plausible:
+        assert state.ledger.bad == {"implausible-bytes": 1}
 
 
 # ------------------------------------------------------------------------------------------ names

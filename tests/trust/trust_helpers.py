@@ -35,6 +35,8 @@ def recorded(path: Path) -> dict[int, set[int]]:
     try:
         with RecordingReader(path) as reader:
             for _, frames in reader:
+                if not frames:  # the collector's clock tick
+                    continue
                 try:
                     header = wire.decode_header(frames[0])
                 except wire.WireError:

@@ -76,10 +76,15 @@ def pop_efficiency(window: Window, sums: WindowSums) -> Efficiency:
         nan = float("nan")
         return Efficiency(ranks, useful, wall, ideal, nan, nan, nan, nan, nan)
     top = float(useful.max())
-    lb = float(useful.mean()) / top
-    comm = top / wall
-    ser = top / ideal if ideal > 0 else float("nan")
-    return Efficiency(ranks, useful, wall, ideal, lb, comm, lb * comm, ser, ideal / wall)
+    # A window cannot take less than its compute path: reported step times shorter than that (clocks that
+    # disagree, or compute timed around overlapping work) are raised to it, so each factor stays in [0, 1]
+    # by construction and the speedup split stays non-negative.
+    # Rounding of sums taken in different orders is clipped too.
+    wall = max(wall, ideal, top)
+    lb = min(1.0, float(useful.mean()) / top)
+    comm = min(1.0, top / wall)
+    ser = min(1.0, top / ideal) if ideal > 0 else float("nan")
+    return Efficiency(ranks, useful, wall, ideal, lb, comm, lb * comm, ser, min(1.0, ideal / wall))
 
 
 @dataclass(frozen=True)

@@ -133,8 +133,10 @@ class StepModel:
         return max(path, path + residual + comm)
 
     def speedup(self, *, bandwidth_x: float = 1.0, latency_div: float = 1.0, workers: int | None = None) -> float:
-        """Projected speedup over one ideal worker: work per step / predicted step time."""
-        return self.work_s / self.step_s(bandwidth_x=bandwidth_x, latency_div=latency_div, workers=workers)
+        """Projected speedup over one ideal worker: work per step / predicted step time (NaN when steps
+        take no time at all)."""
+        step_s = self.step_s(bandwidth_x=bandwidth_x, latency_div=latency_div, workers=workers)
+        return self.work_s / step_s if step_s > 0 else float("nan")
 
 
 def step_model(window: Window, eff: Efficiency, alpha_s: float, beta_Bps: float) -> StepModel:

@@ -19,7 +19,7 @@ from textual.widgets import ContentSwitcher, DataTable, Footer, Input, Static
 from .alerts import AlertsView
 from .culprit import CulpritStrip
 from .export import export_view
-from .feed import Feed, ReplayControls, Snapshot
+from .feed import Feed, FeedEnded, ReplayControls, Snapshot
 from .header import JobHeader
 from .howto import HowView
 from .keys import KeysScreen
@@ -111,6 +111,7 @@ class ConsoleApp(App[None]):
         self._view_before_how = "layers"
         self._asked: dict[str, Any] = {}  # replay state asked for by keys and not yet confirmed by the feed
         self._held: Snapshot | None = None  # the newest snapshot while frozen
+        self.ended: str | None = None  # why the feed ended the console, for the command to print
 
     def compose(self) -> ComposeResult:
         with Vertical(id="main"):
@@ -160,7 +161,11 @@ class ConsoleApp(App[None]):
         self.feed.stop()
 
     def _run_feed(self) -> None:
-        self.feed.start(self._deliver)
+        try:
+            self.feed.start(self._deliver)
+        except FeedEnded as exc:
+            self.ended = str(exc)
+            self.call_from_thread(self.exit, return_code=1)
 
     def _deliver(self, snapshot: Snapshot) -> None:
         """Called on the feed's thread: hand the snapshot to the event loop and nothing else."""

@@ -16,6 +16,11 @@ Deliver = Callable[[Snapshot], None]
 """Called by a feed with each new snapshot; safe to call from any thread."""
 
 
+class FeedEnded(Exception):
+    """Raised by a feed's ``start`` when its source is gone for good (a followed recording vanished): the
+    console then closes and the command prints this one-line message."""
+
+
 class ReplayControls(Protocol):
     """Steering for a recording being replayed; the console calls these from its keys."""
 

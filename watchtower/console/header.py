@@ -16,7 +16,8 @@ SEPARATOR = " · "
 
 
 class JobHeader(Widget):
-    """Five lines of job-wide figures, plus a standing sixth line while the transport is insecure."""
+    """Five lines of job-wide figures, plus standing lines while the transport is insecure, recording has
+    stopped or ranks are silent."""
 
     COMPONENT_CLASSES: ClassVar[set[str]] = {
         "header--title",
@@ -54,6 +55,13 @@ class JobHeader(Widget):
             ]
         if snap["security"]["mode"] == "insecure":
             lines.append(self._insecure(snap, width))
+        silence = _silence(snap)
+        if silence:
+            lines.append(self._alarm(silence, width))
+        recorder = snap.get("recorder")
+        if recorder and recorder["state"] == "stopped":
+            lines.append(self._alarm(f"{recorder['message']} · {fmt.count(recorder['unrecorded'])} messages not "
+                                     "recorded (still received and shown)", width))
         for line in lines:
             line.no_wrap = True
             line.overflow = "ellipsis"
@@ -83,8 +91,11 @@ class JobHeader(Widget):
         if snap["invented"]:
             right.append(" ◆ INVENTED SCENARIO ", self._style("marker"))
         mode = snap["security"]["mode"]
+        rejected = snap["loss"].get("rejected", 0)
+        if rejected:
+            right.append_text(Text("  ") + self._figure("refused", fmt.count(rejected), bad=True))
         if mode != "insecure":
-            state = {"loopback": "loopback only", "keys": "CURVE keys"}.get(mode, mode)
+            state = {"loopback": "loopback only", "keys": "CURVE keys", "unknown": "transport unknown"}.get(mode, mode)
             right.append_text(Text("  ") + fmt.literal(state, self._style("label")))
         left.truncate(max(1, width - right.cell_len - 1), overflow="ellipsis")
         gap = width - left.cell_len - right.cell_len
@@ -92,15 +103,18 @@ class JobHeader(Widget):
 
     def _pace(self, snap: Snapshot, width: int) -> Text:
         step_time = snap["step_time"]
+        liveness = snap.get("liveness", {})
+        live = snap["ranks"] - len(liveness.get("silent_ranks", ()))
+        stalled = bool(liveness.get("stalled"))
         line = _join([
             Text.assemble(
-                self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
+                self._figure("ranks", f"{live}/{snap['world']}", bad=live < snap["world"]),
                 " ",
                 self._figure("on", fmt.counted(len(snap["nodes"]), "node")),
             ),
             self._figure("step", fmt.count(snap["last_step"])),
             self._figure("step time", fmt.seconds(step_time["recent_s"])),
-            self._figure("", _rate(snap["steps_per_s"])),
+            self._figure("", "stalled" if stalled else _rate(snap["steps_per_s"]), bad=stalled),
         ], width)
         line.append(" ")
         if not self.plain:
@@ -113,11 +127,14 @@ class JobHeader(Widget):
         lost = snap["speedup"]["lost_to_interconnect"]
         stake = snap["hours_at_stake"]
         loss = snap["loss"]
+        liveness = snap.get("liveness", {})
+        live = snap["ranks"] - len(liveness.get("silent_ranks", ()))
+        pace = "stalled" if liveness.get("stalled") else fmt.seconds(snap["step_time"]["recent_s"]) + "/step"
         return [
             Text.assemble(self._figure("step", fmt.count(snap["last_step"])), " ",
-                          self._figure("", fmt.seconds(snap["step_time"]["recent_s"]) + "/step")),
+                          self._figure("", pace, bad=bool(liveness.get("stalled")))),
             Text.assemble(
-                self._figure("ranks", f"{snap['ranks']}/{snap['world']}", bad=snap["ranks"] < snap["world"]),
+                self._figure("ranks", f"{live}/{snap['world']}", bad=live < snap["world"]),
                 self._figure(" missing", fmt.count(loss["missing"]), bad=loss["missing"] > 0),
                 self._figure(" bad", fmt.count(loss["bad"]), bad=loss["bad"] > 0),
             ),
@@ -169,6 +186,26 @@ class JobHeader(Widget):
         line = Text.assemble("▲ INSECURE TRANSPORT: ", fmt.literal(warning), style=self._style("alarm"))
         line.pad_right(max(0, width - line.cell_len))
         return line
+
+    def _alarm(self, text: str, width: int) -> Text:
+        """A standing line for a state the operator must not miss (recording stopped, ranks silent)."""
+        line = Text.assemble("▲ ", fmt.literal(text), style=self._style("alarm"))
+        line.pad_right(max(0, width - line.cell_len))
+        return line
+
+
+def _silence(snap: Snapshot) -> str:
+    """The standing line for silent ranks: the job stalled, or which ranks are silent since when."""
+    liveness = snap.get("liveness")
+    if not liveness or not liveness["silent_ranks"]:
+        return ""
+    if liveness["stalled"]:
+        age = fmt.seconds(liveness["age_s"])
+        return f"JOB STALLED: no rank has advanced for {age} (newest step {snap['last_step']})"
+    silent = [r for r in liveness["ranks"] if r["silent"]]
+    named = ", ".join(f"rank {r['rank']} ({fmt.seconds(r['age_s'])} since step {r['last_step']})" for r in silent[:4])
+    more = f" and {len(silent) - 4} more" if len(silent) > 4 else ""
+    return f"SILENT: {named}{more}"
 
 
 def _join(parts: list[Text], width: int) -> Text:
