@@ -18,6 +18,7 @@ import pytest
 pytest.importorskip("torch", reason="PyTorch is not installed (pip install torch==2.13.0, or the [torch] extra)")
 
 from agent import wire
+from agent.records import is_note
 from tests.conftest import free_tcp_port
 from watchtower.recording import RecordingReader
 
@@ -33,6 +34,8 @@ def read_recording(path: Path) -> tuple[dict[int, tuple[str, ...]], dict[int, li
     records: dict[int, list[tuple[str, int, int, int, int]]] = defaultdict(list)
     with RecordingReader(path) as reader:
         for _, frames in reader:
+            if not frames or is_note(frames):  # the collector's clock ticks and notes are not agents' frames
+                continue
             message = wire.decode(frames)
             if isinstance(message, wire.Schema):
                 schemas[message.header.sender] = message

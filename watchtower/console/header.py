@@ -94,8 +94,8 @@ class JobHeader(Widget):
         rejected = snap["loss"].get("rejected", 0)
         if rejected:
             right.append_text(Text("  ") + self._figure("refused", fmt.count(rejected), bad=True))
-        if mode != "insecure":
-            state = {"loopback": "loopback only", "keys": "CURVE keys", "unknown": "transport unknown"}.get(mode, mode)
+        state = {"loopback": "loopback only", "keys": "CURVE keys"}.get(mode)
+        if state:  # insecure has a standing line of its own; an older recording's unknown mode is left unsaid
             right.append_text(Text("  ") + fmt.literal(state, self._style("label")))
         left.truncate(max(1, width - right.cell_len - 1), overflow="ellipsis")
         gap = width - left.cell_len - right.cell_len
