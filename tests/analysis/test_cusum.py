@@ -213,8 +213,9 @@ def test_re_armed_alerts_and_recovery(rng: np.random.Generator) -> None:
     step[300:] /= 4.0
     watch = watch_run(_run(step, np.empty((n, 0))), ("a", "b"), remaining_steps=10_000)
     alerts = [al for al in watch.alerts if al.kind == "step-time"]
-    assert [(abs(al.step_began - s) <= 2, al.step_detected - s <= 3) for al, s in zip(alerts, (1100, 1200))] == \
-        [(True, True), (True, True)], alerts
+    assert len(alerts) == 2, alerts
+    assert all(abs(al.step_began - s) <= 2 and al.step_detected - s <= 3
+               for al, s in zip(alerts, (1100, 1200), strict=True)), alerts
     assert all(al.step_closed is not None and abs(al.step_closed - 1300) <= 2 for al in alerts), alerts
     assert [r.kind for r in watch.recoveries] == ["recovered"]
     # The first alert's stake is the step-time difference it made (DESIGN §3), by hand: 10,000 steps ×
@@ -231,7 +232,7 @@ def test_a_change_too_small_to_act_on_is_recorded_not_alerted(rng: np.random.Gen
     watch = watch_run(_run(step, np.empty((n, 0))), ())
     assert watch.alerts == ()
     assert len(watch.changes) == 1 and abs(watch.changes[0].step_began - 1150) <= 2
-    assert watch.changes[0].effect == pytest.approx(0.06, abs=0.01) and 0.06 < MIN_EFFECT
+    assert watch.changes[0].effect == pytest.approx(0.06, abs=0.01) and MIN_EFFECT > 0.06
     # The same rise with hours at stake above the floor is worth an alert: 1e6 steps × 6 ms = 1.7 h.
     worth = watch_run(_run(step, np.empty((n, 0))), (), remaining_steps=1_000_000)
     assert len(worth.alerts) == 1 and worth.alerts[0].hours_at_stake == pytest.approx(1.67, rel=0.1)
