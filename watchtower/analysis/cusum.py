@@ -218,28 +218,28 @@ def watch_series(x: np.ndarray, h_fast: float, h_slow: float, *, warmup: int = W
         k = k_fast if chart == "fast" else k_slow
         if (x[confirm] - mu) / scale * (1.0 if up else -1.0) <= k:
             # a passing burst decays from h/2 at once; a real change alarms again soon
-            i, state = confirm, (FIR_HEAD_START * h_fast,) * 2 + (0.0, 0.0)
+            i, state = confirm, (FIR_HEAD_START * h_fast,) * 2 + (0.0, 0.0) + state[4:]  # onsets still from before
             continue
-        began = refine_change(x, mu, zero + 1, alarm)
+        began = refine_change(x, mu, zero + 1, confirm)
         changes.append(Change(began, confirm, mu, float(np.nanmedian(x[began:confirm + 1])), up, chart))
         end = max(began + relearn, confirm + 1)
         if end > n or not finite[began:end].any():
             break
         mu, i, origin, n_ref = float(np.nanmedian(x[began:end])), end, began, relearn
-        state = (FIR_HEAD_START * h_fast,) * 2 + (0.0, 0.0)
+        state = (FIR_HEAD_START * h_fast,) * 2 + (0.0, 0.0) + (end - 1,) * 4
     return tuple(changes)
 
 
 def _first_alarm(x: np.ndarray, start: int, stop: int, mu: float, sigma: float, state: tuple[float, ...],
                  h_fast: float, h_slow: float, k_fast: float, k_slow: float, clip: float,
                  ) -> tuple[tuple[bool, str, int, int] | None, tuple[float, ...], int]:
-    """The first alarm in ``x[start:stop]``: ((up, chart, index where that chart was last zero, alarm
-    index) or None, the charts' sums after the last point looked at, the last index where all four were
-    zero at once)."""
+    """The first alarm in ``x[start:stop]``: ((up, chart, index where that chart was last zero, alarm index)
+    or None, the charts' state after the last point looked at (four sums, then where each was last zero;
+    four sums alone mean zero just before ``start``), the last index where all four were zero at once)."""
     z = np.clip((x[start:stop] - mu) / sigma, -clip, clip).tolist()
-    up_f, down_f, up_s, down_s = state
-    zero = [start - 1 if c == 0.0 else -1 for c in state]  # last zero of up_f, down_f, up_s, down_s
-    quiet = start - 1 if not any(state) else -1
+    up_f, down_f, up_s, down_s = state[:4]
+    zero = list(state[4:]) if len(state) > 4 else [start - 1] * 4  # last zero of up_f, down_f, up_s, down_s
+    quiet = start - 1 if not any(state[:4]) else -1
     for j, v in enumerate(z):
         if v != v:  # NaN: the sums carry over
             continue
@@ -256,8 +256,8 @@ def _first_alarm(x: np.ndarray, start: int, stop: int, mu: float, sigma: float, 
             # The fast chart first: it saw the larger change; its onset is the sharper.
             for c, (value, h) in enumerate(zip(sums, (h_fast, h_fast, h_slow, h_slow), strict=True)):
                 if value > h:
-                    return (c % 2 == 0, "fast" if c < 2 else "slow", zero[c], i), sums, quiet
-    return None, (up_f, down_f, up_s, down_s), quiet
+                    return (c % 2 == 0, "fast" if c < 2 else "slow", zero[c], i), (*sums, *zero), quiet
+    return None, (up_f, down_f, up_s, down_s, *zero), quiet
 
 
 def cusum_batch(z: np.ndarray, k: float, h: float, start: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:

@@ -141,9 +141,11 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     net = [lk for lk in links if not lk.local]
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
                        _nanmedian([lk.bandwidth_Bps for lk in net]))
-    fixed_step, links = _slow_links_fixed(model, links, len(window.nodes), remaining)
+    fixer = _Fixer(model, links, len(window.nodes), remaining)
+    links = _with_stakes(fixer, links)
     net = [lk for lk in links if not lk.local]
-    at_stake = None if remaining is None else remaining * max(0.0, model.measured_s - fixed_step) / 3600.0
+    fixed_step = fixer.step_s([lk for lk in net if lk.slow])
+    at_stake = fixer.hours([lk for lk in net if lk.slow])
     whatif = tuple(_what_if(model, label, bw, lat, max(1, round(eff.workers * rx)))
                    for label, bw, lat, rx in scenarios) if eff.workers else ()
     if eff.workers:
@@ -160,64 +162,78 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         layers=layer_stats(window, sums, threshold), links=links, ports=ports,
         stragglers=find_stragglers(window, eff), alerts=alerts,
         recoveries=() if watch is None else watch.recoveries, changes=() if watch is None else watch.changes,
-        standing=_standing(ports, net, alerts), watch=watch,
+        standing=_standing(ports, net, alerts, fixer), watch=watch,
         step_s=step_s, recent_step_s=recent_step_s, remaining_steps=remaining,
         eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake, model=model, whatif=whatif,
         serial_fraction=serial,
     )
 
 
-def _slow_links_fixed(model: StepModel, links: tuple[LinkStats, ...], n_nodes: int,
-                      remaining: int | None) -> tuple[float, tuple[LinkStats, ...]]:
-    """The step time with every slow network link at its class's median β (α unchanged), through the step
-    model with each pair at its own α and β; and the links with their hours at stake as DESIGN §3 defines
-    them: remaining steps × (predicted step now − predicted step with that link alone at the median β)."""
-    alpha = np.zeros(n_nodes * n_nodes)
-    beta = np.full(n_nodes * n_nodes, np.inf)
-    median: dict[str, float] = {}
-    net = [lk for lk in links if not lk.local]
-    for cls in {lk.link_class for lk in net}:
-        median[cls] = _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls])
-    for lk in net:
-        code = lk.src * n_nodes + lk.dst
-        alpha[code] = lk.latency_s if np.isfinite(lk.latency_s) else 0.0
-        beta[code] = lk.bandwidth_Bps if np.isfinite(lk.bandwidth_Bps) and lk.bandwidth_Bps > 0 else np.inf
+class _Fixer:
+    """Predicted step times with chosen slow links at their class's median β (α unchanged), through the
+    step model with every node pair at its own α and β (``StepModel.step_links_s``)."""
 
-    def better(lk: LinkStats) -> float:
-        return max(beta[lk.src * n_nodes + lk.dst], median[lk.link_class]) if np.isfinite(median[lk.link_class]) \
-            else beta[lk.src * n_nodes + lk.dst]
+    def __init__(self, model: StepModel, links: tuple[LinkStats, ...], n_nodes: int, remaining: int | None) -> None:
+        self.model, self.n, self.remaining = model, n_nodes, remaining
+        self.alpha = np.zeros(n_nodes * n_nodes)
+        self.beta = np.full(n_nodes * n_nodes, np.inf)
+        net = [lk for lk in links if not lk.local]
+        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls])
+                  for cls in {lk.link_class for lk in net}}
+        self.better = self.beta.copy()
+        for lk in net:
+            code = lk.src * n_nodes + lk.dst
+            self.alpha[code] = lk.latency_s if np.isfinite(lk.latency_s) else 0.0
+            if np.isfinite(lk.bandwidth_Bps) and lk.bandwidth_Bps > 0:
+                self.beta[code] = lk.bandwidth_Bps
+            self.better[code] = np.fmax(self.beta[code], median[lk.link_class])
+        self.now = model.step_links_s(self.alpha, self.beta, self.beta)
 
-    now = model.step_links_s(alpha, beta, beta)
-    fixed = beta.copy()
+    def step_s(self, fixed: list[LinkStats]) -> float:
+        """The step time with the links ``fixed`` at their class's median β."""
+        beta = self.beta.copy()
+        codes = [lk.src * self.n + lk.dst for lk in fixed]
+        beta[codes] = self.better[codes]
+        return self.model.step_links_s(self.alpha, self.beta, beta)
+
+    def hours(self, fixed: list[LinkStats]) -> float | None:
+        """DESIGN §3: remaining steps × (predicted step time now − predicted with ``fixed`` at the median)."""
+        if self.remaining is None:
+            return None
+        return self.remaining * max(0.0, self.now - self.step_s(fixed)) / 3600.0
+
+
+def _with_stakes(fixer: _Fixer, links: tuple[LinkStats, ...]) -> tuple[LinkStats, ...]:
+    """Each slow network link with its own hours at stake (that link alone at the median β)."""
     out = []
     for lk in links:
         if lk.local or not lk.slow:
             out.append(lk)
             continue
-        code = lk.src * n_nodes + lk.dst
-        fixed[code] = better(lk)
-        alone = beta.copy()
-        alone[code] = fixed[code]
-        saving = max(0.0, now - model.step_links_s(alpha, beta, alone))
-        out.append(replace(lk, saving_per_step_s=saving,
-                           hours_at_stake=None if remaining is None else remaining * saving / 3600.0))
-    return model.step_links_s(alpha, beta, fixed), tuple(out)
+        saving = max(0.0, fixer.now - fixer.step_s([lk]))
+        out.append(replace(lk, saving_per_step_s=saving, hours_at_stake=fixer.hours([lk])))
+    return tuple(out)
 
 
-def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[Alert, ...]) -> tuple[Standing, ...]:
+def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[Alert, ...],
+              fixer: _Fixer) -> tuple[Standing, ...]:
     """Slow ports, then slow links no port explains, that no change alert already covers (a port or link
-    that changed during the run is its alert's business), costliest first."""
+    that changed during the run is its alert's business), costliest first. A port's stake is what fixing
+    all the links it holds back buys at once."""
     changed = {al.subject for al in alerts} | {(al.port or "").split(" (")[0] for al in alerts if al.port}
     by_pair = {(lk.src_name, lk.dst_name): lk for lk in net}
     found = []
-    for p in ports:
-        if not p.slow or p.name in changed:
-            continue
-        held = [by_pair[pair] for pair in p.explains if pair in by_pair]
-        hours = None if any(lk.hours_at_stake is None for lk in held) else sum(lk.hours_at_stake for lk in held)
+    slow = [p for p in ports if p.slow and p.name not in changed]
+    for node in dict.fromkeys(p.node_name for p in slow):
+        # Both ways of one node slow (a card at a lower rate): one finding, fixed together, or neither
+        # direction's fix would show while the other still held the node's exchanges back.
+        mine = [p for p in slow if p.node_name == node]
+        held = [by_pair[pair] for p in mine for pair in p.explains if pair in by_pair]
+        subject = mine[0].name if len(mine) == 1 else f"{node} out and in"
         names = tuple(f"{lk.src_name}→{lk.dst_name}" for lk in held)
-        found.append(Standing("slow-port", p.name, p.name, names, hours,
-                              f"port {p.name} runs at {p.capacity_Bps / 1e9:.3g} GB/s ({p.reason}) for the whole "
+        rates = " and ".join(f"{p.direction} {p.capacity_Bps / 1e9:.3g} GB/s" for p in mine)
+        found.append(Standing("slow-port", subject, subject, names, fixer.hours(held),
+                              f"{node} {rates} ({', '.join(dict.fromkeys(p.reason for p in mine))}) for the whole "
                               f"window, holding back {len(names)} link{'s' * (len(names) != 1)}"))
     for lk in net:
         subject = f"{lk.src_name}→{lk.dst_name}"
