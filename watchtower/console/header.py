@@ -126,10 +126,13 @@ class JobHeader(Widget):
     def _stakes(self, snap: Snapshot) -> Text:
         loss = snap["loss"]
         stake = snap["hours_at_stake"]
+        fixed = next((w for w in snap.get("whatif", []) if w.get("slow_fixed")), None)
         return Text.assemble(
             self._figure("ETA", fmt.duration(snap["eta_s"])),
             SEPARATOR,
             self._figure("at stake", fmt.hours(stake), bad=stake is not None and stake > 0),
+            self._figure(" · slow links fixed", f"{fmt.seconds(fixed['step_s'])}/step")
+            if fixed is not None and stake else "",
             SEPARATOR,
             self._figure("frames", fmt.count(loss["frames"])),
             self._figure(" missing", fmt.count(loss["missing"]), bad=loss["missing"] > 0),

@@ -121,11 +121,16 @@ class LinksView(TableView):
         table = self.table
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
         slow = sum(1 for link in self.snapshot["links"] if link["slow"]) if self.snapshot else 0
+        fixed = next((w for w in self.snapshot.get("whatif", []) if w.get("slow_fixed")), None) \
+            if self.snapshot else None
         title = Text.assemble(
             (f"{len(table.rows)} links", self.paint("title")),
             f" by {table.sort_key.label} {arrow} · ",
             (SLOW_MARK, self.paint("bad")),
-            f" {slow} slow · use = throughput/nominal · ←→ scroll",
+            f" {slow} slow",
+            f" (fixed: step {fmt.seconds(fixed['step_s'])}, speedup {fmt.number(fixed['speedup'])})"
+            if fixed is not None and slow else "",
+            " · use = throughput/nominal · ←→ scroll",
         )
         self.query_one("#links-title", Static).update(title)
 
