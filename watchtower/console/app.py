@@ -139,7 +139,8 @@ class ConsoleApp(App[None]):
         if snapshot is None:
             return
         self.query_one(JobHeader).snapshot = snapshot
-        self.query_one(ViewBar).alerts = len(snapshot["alerts"])
+        self.query_one(ViewBar).alerts = sum(1 for a in snapshot["alerts"] if a.get("step_closed") is None) + \
+            len(snapshot.get("standing", []))
         self.query_one(ReplayBar).position = snapshot["replay"]
         self.current_view.snapshot = snapshot
 
