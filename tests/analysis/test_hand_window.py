@@ -120,13 +120,13 @@ def test_projections(result: dict) -> None:
     assert result["remaining_steps"] == 996
     assert result["eta_s"] == pytest.approx(996 * 10.25)
     # Hours at stake of n1→n0 (DESIGN §3: remaining steps × (predicted step now − predicted step with the link
-    # at the class's median β), a step-time difference in which α stays as it is). The class's median β is
-    # 0.75 GB/s. The only network messages are layer c's, one per receiving rank; the layer waits for the
-    # slowest receiver, r0 or r1 on n1→n0: now Σ over the 4 steps of (100 µs + (s + 1) MB / 0.5 GB/s) =
-    # 0.4 ms + 20 ms = 20.4 ms; fixed 0.4 ms + 10 MB / 0.75 GB/s = 13.733 ms (n0→n1's 0.4 + 10 ms stays
-    # below it). Saving 6.667 ms per 4 steps = 1.6667 ms per step; × 996 steps / 3600 s.
-    saving = (20.4e-3 - (0.4e-3 + 10e6 / 0.75e9)) / 4
-    assert saving == pytest.approx(1.6667e-3, rel=1e-4)
+    # at the median β of its class's healthy links), a step-time difference in which α stays as it is). The
+    # class's one healthy link, n0→n1, runs at 1 GB/s. The only network messages are layer c's, one per rank
+    # and direction; the layer waits for the busiest rank, counting what it receives and what it sends: on
+    # n1→n0, now Σ over the 4 steps of (100 µs + (s + 1) MB / 0.5 GB/s) = 0.4 ms + 20 ms = 20.4 ms; fixed
+    # 0.4 ms + 10 MB / 1 GB/s = 10.4 ms, the same as n0→n1. Saving 10 ms per 4 steps = 2.5 ms per step.
+    saving = (20.4e-3 - (0.4e-3 + 10e6 / 1e9)) / 4
+    assert saving == pytest.approx(2.5e-3, rel=1e-9)
     links = {(lk["src"], lk["dst"]): lk for lk in result["links"]}
     assert links["n1", "n0"]["hours_at_stake"] == pytest.approx(996 * saving / 3600)
     assert links["n0", "n1"]["hours_at_stake"] == 0.0

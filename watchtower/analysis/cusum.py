@@ -332,10 +332,11 @@ def watch_run(series: RunSeries, nodes: tuple[str, ...], *, links: RunSeries | N
 
     Link rates come from ``links`` when given (the analysis's sharing-corrected series over the steps it
     still holds), else from ``series``. Thresholds come from ``chart_thresholds`` for 1 + links series.
-    A worsening change is an alert when it is worth acting on: the step time over the change's steps rose
-    by ``min_effect`` or more against the steps before it, or the rise puts ``min_hours`` or more of the
-    remaining run at stake (and a link fell by ``min_link_change`` or more itself); otherwise it is a
-    recorded change. A change back to a level nearer an open alert's baseline than its degraded level
+    A worsening change is an alert when it is worth acting on: the step time rose by ``min_effect`` or more
+    (the level from the onset to detection over the level before), or the rise puts ``min_hours`` or more of
+    the remaining run at stake; a link's fall (by ``min_link_change`` or more itself) is worth it when the
+    step time rose so at about the same step. Otherwise it is a recorded change. A change back to a level
+    nearer an open alert's baseline than its degraded level
     closes the alert and records a recovery.
     """
     link_series = series if links is None else links
@@ -357,18 +358,33 @@ def watch_run(series: RunSeries, nodes: tuple[str, ...], *, links: RunSeries | N
     alerts: list[Alert] = []
     recoveries: list[Alert] = []
     changes: list[Alert] = []
+    rises: list[Alert] = []  # the step time's upward changes: what a link's fall must have cost to matter
+    dips: list[float] = []  # the step time's level before each fall that closed no alert
     for kind, subject, x, steps, cap in candidates:
         open_: list[Alert] = []
         for ch in watch_series(x, h_fast, h_slow, warmup=warmup, cap=cap):
             began, detected = int(steps[ch.began]), int(steps[ch.detected])
             before, after = math.exp(ch.before), math.exp(ch.after)
-            effect, hours = _step_effect(log_step, step_steps, began, detected, warmup, remaining_steps)
+            if kind == "step-time":
+                # A rise back from a dip is no degradation: measured against the level before the dip.
+                ref = before if not dips or open_ else max(before, dips[-1])
+                effect = after / ref - 1.0
+                hours = None if remaining_steps is None else remaining_steps * max(0.0, after - ref) / 3600.0
+            else:
+                # A link's fall is worth acting on when the step time rose with it (an upward step-time change
+                # with its onset within RELEARN steps): that rise is the fall's cost. A fall the step time did
+                # not feel (flows that shift between ports, a link off the critical path) costs nothing.
+                felt = [r for r in rises if abs(r.step_began - began) <= RELEARN]
+                effect = max((r.effect for r in felt), default=math.nan)
+                hours = max((r.hours_at_stake for r in felt if r.hours_at_stake is not None), default=None)
             worse = ch.up == (kind == "step-time")
             if worse:
                 material = kind == "step-time" or 1.0 - after / before >= min_link_change
                 worth = effect >= min_effect or (hours is not None and hours >= min_hours)
                 al = Alert(kind, subject, began, detected, before, after,
                            _message(kind, subject, before, after, began), effect=effect, hours_at_stake=hours)
+                if kind == "step-time":
+                    rises.append(al)
                 if material and worth:
                     open_.append(al)
                 else:
@@ -385,6 +401,8 @@ def watch_run(series: RunSeries, nodes: tuple[str, ...], *, links: RunSeries | N
                                         f"{_level(kind, after)}) from about step {began}, after the change "
                                         f"from step {first.step_began}"))
             if not back:
+                if kind == "step-time":
+                    dips.append(before)
                 changes.append(Alert(kind, subject, began, detected, before, after,
                                      _message(kind, subject, before, after, began), effect=effect))
         alerts.extend(open_)
@@ -407,18 +425,6 @@ def _moving_columns(log_rate: np.ndarray, warmup: int, h_fast: float, h_slow: fl
             sigma = max(min(sigma, MAX_LINK_SIGMA), MIN_LOG_SIGMA)
             z[start:, j] = np.clip((log_rate[start:, j] - mu) / sigma, -CLIP_SIGMA, CLIP_SIGMA)
     return np.flatnonzero(any_alarm(z, h_fast, h_slow)).tolist()
-
-
-def _step_effect(log_step: np.ndarray, steps: np.ndarray, began: int, detected: int, warmup: int,
-                 remaining: int | None) -> tuple[float, float | None]:
-    """(relative step-time change from the ``warmup`` steps before ``began`` to the steps from it to
-    ``detected``; remaining × the step-time difference in hours, None without a total)."""
-    lo, hi = int(np.searchsorted(steps, began)), int(np.searchsorted(steps, detected, side="right"))
-    before, after = log_step[max(0, lo - warmup):lo], log_step[lo:hi]
-    if not np.isfinite(before).any() or not np.isfinite(after).any():
-        return math.nan, None
-    b, a = math.exp(float(np.nanmedian(before))), math.exp(float(np.nanmedian(after)))
-    return a / b - 1.0, None if remaining is None else remaining * (a - b) / 3600.0
 
 
 def _node(nodes: tuple[str, ...], index: int) -> str:

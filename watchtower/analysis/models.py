@@ -142,7 +142,9 @@ class StepModel:
 
     def links_comm_s(self, alpha: np.ndarray, beta: np.ndarray) -> float:
         """Modelled communication per step with each node pair at its own α and β (indexed by pair code):
-        the halo exchange as in ``comm_s``, each message at its pair's α + n/β; collectives at the fleet's α
+        the halo exchange as in ``comm_s``, each message at its pair's α + n/β, the layer waiting for the
+        busiest rank counting both the messages it receives and those it sends (a way out shared by
+        several messages sends them one after another at its rate); collectives at the fleet's α
         and the slowest pair's β, since a ring or tree over the whole job is paced by its slowest link
         (Patarasuk & Yuan, 2009)."""
         finite = beta[np.isfinite(beta) & (beta > 0)]
@@ -231,7 +233,7 @@ def _halo_groups(window: Window) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 
 def _halo_rows(window: Window) -> tuple[np.ndarray, ...]:
-    """Network transfers grouped by (step, layer, receiving rank) and, within a group, by node pair:
+    """Network transfers grouped by (step, layer, rank, receiving or sending) and, within a group, by node pair:
     (cell of each group, then per row its group, pair code, message count and bytes)."""
     tr = window.transfers
     empty_i, empty_f = np.zeros(0, np.int64), np.zeros(0)
@@ -246,12 +248,18 @@ def _halo_rows(window: Window) -> tuple[np.ndarray, ...]:
         return empty_i, empty_i, empty_i, empty_f, empty_f
     n_layers, n_ranks, n_pairs = max(1, len(window.layers)), len(window.ranks), len(window.nodes) ** 2
     cell = step_idx[net] * n_layers + np.asarray(tr.layer, np.int64)[net]
-    groups, group = np.unique(cell * n_ranks + di[net], return_inverse=True)
     pair = rank_node[si[net]] * len(window.nodes) + rank_node[di[net]]
-    rows, row = np.unique(group * n_pairs + pair, return_inverse=True)
+    # Each message counts at both ends: a receiver takes its messages one after another, and so does a
+    # sender whose way out carries several at once (side 0: receiving rank, 1: sending rank).
+    cell2 = np.concatenate([cell, cell])
+    rank2 = np.concatenate([di[net], si[net]])
+    side = np.repeat([0, 1], len(cell))
+    groups, group = np.unique((cell2 * n_ranks + rank2) * 2 + side, return_inverse=True)
+    rows, row = np.unique(group * n_pairs + np.concatenate([pair, pair]), return_inverse=True)
     msgs = np.bincount(row, minlength=len(rows)).astype(np.float64)
-    nbytes = np.bincount(row, weights=np.asarray(tr.nbytes, np.float64)[net], minlength=len(rows))
-    return groups // n_ranks, rows // n_pairs, rows % n_pairs, msgs, nbytes
+    weights = np.asarray(tr.nbytes, np.float64)[net]
+    nbytes = np.bincount(row, weights=np.concatenate([weights, weights]), minlength=len(rows))
+    return groups // 2 // n_ranks, rows // n_pairs, rows % n_pairs, msgs, nbytes
 
 
 def remaining_steps(total_steps: int | None, last_step: int) -> int | None:

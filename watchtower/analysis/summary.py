@@ -178,7 +178,10 @@ class _Fixer:
         self.alpha = np.zeros(n_nodes * n_nodes)
         self.beta = np.full(n_nodes * n_nodes, np.inf)
         net = [lk for lk in links if not lk.local]
-        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls])
+        # The class's healthy links set the rate to reach: in a small class the slow links themselves
+        # would pull a median over all of it down (in a 4-node ring one bad node is on half the links).
+        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls and not lk.slow]
+                                  or [lk.bandwidth_Bps for lk in net if lk.link_class == cls])
                   for cls in {lk.link_class for lk in net}}
         self.better = self.beta.copy()
         for lk in net:
@@ -339,8 +342,9 @@ HOW: dict[str, tuple[str, str]] = {
                    "(default 0.5) of nominal (below-nominal), or running at a slow port's capacity (slow port)",
                    "Iglewicz & Hoaglin (1993); third and fraction: common practice, no source"),
     "links.hours_at_stake": ("slow links: remaining steps × (predicted step time now − predicted step time with "
-                             "this link alone at its class's median β), both through the step model with every node "
-                             "pair at its own α and β (see whatif); 0 for links not slow",
+                             "this link alone at the median β of its class's links not judged slow), both through the "
+                             "step model with every node pair at its own α and β (see whatif.slow_fixed); 0 for "
+                             "links not slow",
                              "DESIGN §3; Hockney (1994)"),
     "stragglers": ("ranks whose modified z-score of log compute exceeds +3.5", "Iglewicz & Hoaglin (1993)"),
     "alerts": ("robust per-step CUSUM (Page 1954; tabular form, Montgomery SQC) on log step time (rises) and "
@@ -362,13 +366,15 @@ HOW: dict[str, tuple[str, str]] = {
                  "alert; stake = Σ hours at stake of the links they hold back", "definition; see ports.slow"),
     "eta_s": ("remaining steps × mean step time of the recent steps", "plain product"),
     "hours_at_stake": ("remaining steps × (predicted step time now − predicted step time with every slow link at "
-                       "its class's median β): the 'slow links fixed' what-if", "DESIGN §3; model above"),
+                       "its class's healthy median β): the 'slow links fixed' what-if", "DESIGN §3; model above"),
     "whatif": ("compute path × p/p' + unexplained time + modelled collectives (cheapest of ring, recursive "
                "doubling, Rabenseifner) and halo exchange (max over ranks of Σ α + n/β)",
                "Thakur, Rabenseifner & Gropp (2005); Patarasuk & Yuan (2009)"),
     "whatif.slow_fixed": ("measured step − modelled communication with each node pair at its own α, β + the same "
-                          "with every slow link's β raised to its class's median; halo messages at their pair's "
-                          "α + n/β (max over ranks per layer), collectives at the fleet α and the slowest pair's β",
+                          "with every slow link's β raised to the median of its class's links not judged slow; "
+                          "halo messages at their pair's α + n/β, summed per rank over what it receives and, "
+                          "apart, what it sends (a shared way out sends one after another), the layer waiting "
+                          "for the busiest; collectives at the fleet α and the slowest pair's β",
                           "Hockney (1994); Patarasuk & Yuan (2009)"),
     "serial_fraction": ("Karp–Flatt e = (1/S − 1/p)/(1 − 1/p) per run size", "Karp & Flatt (1990)"),
 }
