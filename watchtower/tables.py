@@ -67,10 +67,18 @@ def format_snapshot(s: dict[str, Any]) -> str:
         out += _table(["rank", "node", "compute", "score"],
                       [[str(st["rank"]), visible(st["node"]), seconds(st["compute_s"]), number(st["score"])]
                        for st in s["stragglers"]], right={0, 2, 3})
+    if s.get("standing"):
+        out += ["", "standing findings (slow for the whole window)"]
+        out += [f"  {visible(f['message'])}; {hours(f['hours_at_stake'])} at stake" for f in s["standing"]]
     if s["alerts"]:
         out += ["", "alerts"]
+        out += [f"  step {a['step_detected']} (began ~{a['step_began']}"
+                f"{'' if a.get('step_closed') is None else ', back from ' + str(a['step_closed'])}): "
+                f"{visible(a['message'])}" for a in s["alerts"]]
+    if s.get("changes"):
+        out += ["", "changes below the alert bar (recorded, no alert)"]
         out += [f"  step {a['step_detected']} (began ~{a['step_began']}): {visible(a['message'])}"
-                for a in s["alerts"]]
+                for a in s["changes"]]
     recording = s.get("recording")
     if recording and not recording["complete"]:
         out += ["", f"recording stopped at byte {recording['torn_at']}: {recording['reason']}"]

@@ -406,7 +406,8 @@ def watch_run(series: RunSeries, nodes: tuple[str, ...], *, links: RunSeries | N
                 changes.append(Alert(kind, subject, began, detected, before, after,
                                      _message(kind, subject, before, after, began), effect=effect))
         alerts.extend(open_)
-    alerts.sort(key=lambda al: (al.step_began, al.kind, al.subject))
+    for found in (alerts, changes):
+        found.sort(key=lambda al: (al.step_began, al.kind, al.subject))
     return Watch(tuple(alerts), tuple(recoveries), tuple(changes), n_series, arl, h_fast, h_slow)
 
 
