@@ -83,3 +83,33 @@ async def test_header_and_links_view_show_the_step_with_slow_links_fixed(demo: d
         text = screen_text(app)
     assert f"slow links fixed {fmt.seconds(fixed['step_s'])}/step" in text
     assert f"(fixed: step {fmt.seconds(fixed['step_s'])}, speedup {fmt.number(fixed['speedup'])})" in text
+
+
+def test_the_alert_bar_comes_from_the_cluster_file_and_the_flags(demo: dict[str, Any], tmp_path: Any) -> None:
+    """The demo's mid-run change moves the step time by about 20 % and puts over 10 h at stake: above the
+    default bar (10 %, 1 h), below a bar of 50 % and 100 h, whether set in the cluster file or by flags
+    (which win over the file). Below the bar the change is still recorded."""
+    import json
+    import subprocess
+    import sys
+
+    assert demo["alerts"] and all(0.1 <= al["effect"] < 0.5 and 1.0 <= al["hours_at_stake"] < 100
+                                  for al in demo["alerts"])
+    job = f"[job]\ntotal_steps = {demo['remaining_steps'] + demo['window']['last_step'] + 1}\n"  # the demo's own
+    cluster = tmp_path / "cluster.toml"
+    cluster.write_text(job + "[alerts]\nmin_effect = 0.5\nmin_hours = 100\n")
+    loose = tmp_path / "loose.toml"
+    loose.write_text(job + "[alerts]\nmin_effect = 0.5\nmin_hours = 100000\n")
+
+    def alerts(*extra: str) -> dict[str, Any]:
+        done = subprocess.run([sys.executable, "-m", "watchtower.cli", "report", str(DEMO_RECORDING), "--json",
+                               *extra], capture_output=True, text=True, timeout=120, check=True)
+        return json.loads(done.stdout)
+
+    by_file = alerts("--cluster", str(cluster))
+    assert by_file["remaining_steps"] == demo["remaining_steps"]
+    assert by_file["alerts"] == [] and {c["step_began"] for c in by_file["changes"]} >= {260}
+    by_flags = alerts("--alert-min-effect", "0.5", "--alert-min-hours", "100")
+    assert by_flags["alerts"] == []
+    flags_win = alerts("--cluster", str(loose), "--alert-min-hours", "1")
+    assert {al["step_began"] for al in flags_win["alerts"]} == {260}
