@@ -159,12 +159,6 @@ class StepModel:
         starts = np.flatnonzero(np.r_[True, self.group_cell[1:] != self.group_cell[:-1]])
         return coll + float(np.maximum.reduceat(per_group, starts).sum()) / self.n_steps
 
-    def step_links_s(self, alpha: np.ndarray, beta: np.ndarray, new_beta: np.ndarray) -> float:
-        """Predicted step time when the pairs' β move from ``beta`` (as measured) to ``new_beta``: the
-        measured step less the modelled communication now plus the modelled communication then."""
-        residual = self.measured_s - self.path_s - self.links_comm_s(alpha, beta)
-        return max(self.path_s, self.path_s + residual + self.links_comm_s(alpha, new_beta))
-
     def speedup(self, *, bandwidth_x: float = 1.0, latency_div: float = 1.0, workers: int | None = None) -> float:
         """Projected speedup over one ideal worker: work per step / predicted step time."""
         return self.work_s / self.step_s(bandwidth_x=bandwidth_x, latency_div=latency_div, workers=workers)

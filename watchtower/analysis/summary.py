@@ -171,7 +171,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
 
 class _Fixer:
     """Predicted step times with chosen slow links at their class's median β (α unchanged), through the
-    step model with every node pair at its own α and β (``StepModel.step_links_s``)."""
+    step model with every node pair at its own α and β: the measured step less the modelled communication
+    as measured plus the modelled communication then (``StepModel.links_comm_s``)."""
 
     def __init__(self, model: StepModel, links: tuple[LinkStats, ...], n_nodes: int, remaining: int | None) -> None:
         self.model, self.n, self.remaining = model, n_nodes, remaining
@@ -190,14 +191,16 @@ class _Fixer:
             if np.isfinite(lk.bandwidth_Bps) and lk.bandwidth_Bps > 0:
                 self.beta[code] = lk.bandwidth_Bps
             self.better[code] = np.fmax(self.beta[code], median[lk.link_class])
-        self.now = model.step_links_s(self.alpha, self.beta, self.beta)
+        self.comm_now = model.links_comm_s(self.alpha, self.beta)
+        self.now = self.step_s([])
 
     def step_s(self, fixed: list[LinkStats]) -> float:
-        """The step time with the links ``fixed`` at their class's median β."""
+        """The step time with the links ``fixed`` at their class's healthy median β."""
         beta = self.beta.copy()
         codes = [lk.src * self.n + lk.dst for lk in fixed]
         beta[codes] = self.better[codes]
-        return self.model.step_links_s(self.alpha, self.beta, beta)
+        m = self.model
+        return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, beta))
 
     def hours(self, fixed: list[LinkStats]) -> float | None:
         """DESIGN §3: remaining steps × (predicted step time now − predicted with ``fixed`` at the median)."""
