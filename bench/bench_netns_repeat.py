@@ -9,8 +9,8 @@ or way in (ingress, 30 Mb/s), runs the ring job (256 KiB halos, 30 steps) and re
 scenario, over the runs: the shaped links' β error and the shaped port's capacity error (min..max, in % of
 the payload rate), and how many runs flagged a link that is neither on the shaped port nor names it (each
 such flag listed). Targets (issue 14, item 7): β within ±5 % and capacity within ±3 % in every run, and no
-stray flag. Run it under the shared lock: ``flock /work/heavy.lock python bench/bench_netns_repeat.py``
-(each run takes 20-30 s).
+stray flag. Run it with nothing else busy on the machine (the rates depend on free CPU); each run takes
+20-30 s.
 """
 
 from __future__ import annotations
