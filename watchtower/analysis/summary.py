@@ -429,7 +429,7 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
                        for st in a.stragglers],
         "alerts": [_alert_json(al) for al in a.alerts],
         "recoveries": [_alert_json(al) for al in a.recoveries],
-        "changes": [_alert_json(al) for al in a.changes],
+        "changes": [{**_alert_json(al), "open": False} for al in a.changes],
         "standing": [{"kind": f.kind, "subject": f.subject, "culprit": f.culprit, "links": list(f.links),
                       "hours_at_stake": _f(f.hours_at_stake), "message": f.message} for f in a.standing],
         "alert_design": None if a.watch is None else {
