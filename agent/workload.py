@@ -1,7 +1,8 @@
 """A real miniature model-parallel job for Watchtower to watch: a ring of ranks exchanging halos over TCP.
 
-Each rank owns a slab of an L-layer network. Per layer it computes (matrix products sized at startup to
-take about ``compute_ms``), then exchanges a halo with its ring neighbours (rank ± 1 mod world): it sends
+Each rank owns a slab of an L-layer network. Per layer it computes (matrix products repeated until
+``compute_ms`` has passed on the clock, so every layer of every step costs what the flag says), then
+exchanges a halo with its ring neighbours (rank ± 1 mod world): it sends
 its halo to each and receives theirs, all at once from one thread with non-blocking sockets, as real halo
 exchanges overlap their transfers. Halo sizes vary by layer (``exchange_bytes`` × a factor from 1/8 to 2,
 the same for every rank) so that link models t = α + n/β can be fitted from the records.
@@ -43,7 +44,6 @@ from agent.probe import Probe
 from agent.records import NotARecording
 
 SLAB = 64  # side of each rank's square slab; a 64×64 float64 product takes tens of microseconds
-CALIBRATE_NS = 20_000_000  # time spent measuring the cost of one compute repetition at startup
 MAX_HALO_BYTES = 1 << 30
 HELLO = struct.Struct("<4sII")  # magic, rank, world: the first bytes on a new link
 HELLO_MAGIC = b"wtlk"
@@ -114,21 +114,19 @@ class Slab:
         self.x = np.random.default_rng([seed, 1, rank]).standard_normal((SLAB, SLAB))
         self._tmp = np.empty_like(self.x)
 
-    def compute(self, layer: int, reps: int) -> None:
-        for _ in range(reps):
+    def compute(self, layer: int, compute_ms: float) -> None:
+        """Matrix products on the layer until ``compute_ms`` has passed (at least one when it is positive).
+
+        A repetition count calibrated once at startup drifts with caches, the BLAS's first calls and other
+        processes on the core (a 5 ms layer measured 0.6 ms early in a run); the clock does not."""
+        if compute_ms <= 0:
+            return
+        deadline = time.perf_counter_ns() + round(compute_ms * 1e6)
+        while True:
             np.matmul(self.x, self.weights[layer], out=self._tmp)
             np.tanh(self._tmp, out=self.x)
-
-    def reps_for(self, compute_ms: float) -> int:
-        """How many repetitions take about ``compute_ms`` on this machine, measured once."""
-        if compute_ms <= 0:
-            return 0
-        self.compute(0, 3)  # warm caches and the BLAS
-        reps, start = 0, time.perf_counter_ns()
-        while (elapsed := time.perf_counter_ns() - start) < CALIBRATE_NS:
-            self.compute(0, 10)
-            reps += 10
-        return max(1, round(compute_ms * 1e6 * reps / elapsed))
+            if time.perf_counter_ns() >= deadline:
+                return
 
     def halo(self, nbytes: int) -> np.ndarray:
         """The slab's bytes repeated to ``nbytes``: what a neighbour needs of this rank's boundary."""
@@ -475,7 +473,6 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
     names = [f"layer.{i:02d}" for i in range(config.layers)]
     sizes = halo_sizes(config.exchange_bytes, config.layers, config.seed)
     slab = Slab(config.rank, config.layers, config.seed)
-    reps = slab.reps_for(config.compute_ms)
     with contextlib.ExitStack() as cleanup:  # unwinds in reverse: links, then probe, then its context
         ctx = zmq.Context()
         cleanup.callback(ctx.term)  # waits up to the probe's linger for queued frames to reach the collector
@@ -495,7 +492,7 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
         for step in range(config.steps):
             for layer, name in enumerate(names):
                 with probe.compute(name):
-                    slab.compute(layer, reps)
+                    slab.compute(layer, config.compute_ms)
                 if ring.links:
                     for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
                         slab.absorb(halo)

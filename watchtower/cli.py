@@ -7,6 +7,7 @@ input errors), never a traceback.
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import math
 import os
 import shutil
@@ -110,6 +111,7 @@ def build_parser() -> argparse.ArgumentParser:
                        help="with --listen: key folder; encrypt, and accept only listed agents")
     _metrics_option(watch)
     _console_options(watch)
+    _alert_options(watch)
     watch.set_defaults(run=_watch)
 
     replay = commands.add_parser("replay", help="a recording through the console")
@@ -117,6 +119,7 @@ def build_parser() -> argparse.ArgumentParser:
     replay.add_argument("--speed", type=_positive(float), default=1.0, help="times the recorded pace (default 1)")
     replay.add_argument("--from", dest="from_step", type=int, default=0, metavar="STEP", help="start at this step")
     _console_options(replay)
+    _alert_options(replay)
     replay.set_defaults(run=_replay)
 
     demo = commands.add_parser("demo", help="the bundled, invented scenario in the console (no cluster needed)")
@@ -140,6 +143,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="text: fit every line in this many columns (default: the terminal's width)")
     report.add_argument("--cluster", type=Path, help="cluster description (TOML): nominal rates, total steps")
     report.add_argument("--window", type=_positive(int), help="analyse only the last N steps")
+    _alert_options(report)
     report.set_defaults(run=_report)
 
     keys = commands.add_parser("keys", help="CURVE keys: the head's pair, and one pair per agent")
@@ -208,13 +212,23 @@ def _console_settings(args: argparse.Namespace) -> dict[str, Any]:
     return {"redraw_interval_s": args.interval, "low_bandwidth": args.low_bandwidth}
 
 
-def _cluster(path: Path | None) -> Cluster | None:
-    if path is None:
-        return None
+def _alert_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--alert-min-effect", type=_positive(float), metavar="FRACTION",
+                        help="step-time change an alert needs (default 0.10, or the cluster file's)")
+    parser.add_argument("--alert-min-hours", type=_positive(float), metavar="HOURS",
+                        help="or hours at stake an alert needs (default 1, or the cluster file's)")
+
+
+def _cluster(path: Path | None, args: argparse.Namespace | None = None) -> Cluster | None:
+    """The cluster file, with the alert bar from the flags (which win over the file) when given."""
     try:
-        return load_cluster(path)
+        cluster = None if path is None else load_cluster(path)
     except ClusterConfigError as exc:
         raise UsageError(str(exc)) from None
+    bar = {field: value for field, flag in (("alert_min_effect", "alert_min_effect"),
+                                           ("alert_min_hours", "alert_min_hours"))
+           if (value := getattr(args, flag, None)) is not None}
+    return dataclasses.replace(cluster or Cluster.default(), **bar) if bar else cluster
 
 
 def _security(endpoint: Endpoint, insecure: bool, listen: str, keys: bool = False) -> dict[str, str | None]:
@@ -294,7 +308,7 @@ def _watch(args: argparse.Namespace) -> int:
     from watchtower.attach import choose, find_collectors
     from watchtower.feeds import AttachFeed, LiveFeed
 
-    cluster = _cluster(args.cluster)
+    cluster = _cluster(args.cluster, args)
     if args.listen and (args.follow is not None or args.pid is not None or args.job is not None):
         raise UsageError("--listen collects here; --follow, --pid and --job attach to a running collect: give one")
     if args.listen:
@@ -342,7 +356,7 @@ def _replay(args: argparse.Namespace) -> int:
     from watchtower.feeds import ReplayFeed
 
     try:
-        feed = ReplayFeed(args.recording, cluster=_cluster(args.cluster), speed=args.speed,
+        feed = ReplayFeed(args.recording, cluster=_cluster(args.cluster, args), speed=args.speed,
                           from_step=args.from_step, window_steps=args.window)
     except RecordingError as exc:
         raise UsageError(str(exc)) from None
@@ -501,7 +515,7 @@ def _report(args: argparse.Namespace) -> int:
         raise UsageError(f"--json and --format {args.format} disagree: give one")
     output = "json" if args.json else args.format or "text"
     width = args.width or shutil.get_terminal_size().columns
-    return run_report(args.recording, output=output, cluster=_cluster(args.cluster), window=args.window,
+    return run_report(args.recording, output=output, cluster=_cluster(args.cluster, args), window=args.window,
                       width=max(width, MIN_WIDTH), table=args.table)
 
 

@@ -17,6 +17,10 @@ A cluster file is TOML (read with the standard library's ``tomllib``)::
     rack-a = ["node001", "node002"]
     rack-b = ["node017", "node018"]
 
+    [alerts]                     # optional; the bar a change must clear to raise an alert
+    min_effect = 0.10            # step-time change, as a fraction (default 0.10)
+    min_hours = 1.0              # or hours of the remaining run at stake (default 1.0)
+
 A link's nominal rate is the lower of its two NICs (either end can limit it). A link's *class* is the group
 of its ends when both ends share one ("rack-a"), else the two groups joined by "|" in sorted order
 ("rack-a|rack-b"); without ``[groups]`` every link is in the one class "". Slow links are judged against
@@ -53,6 +57,8 @@ class Cluster:
     nic_Bps: float | None = None  # default nominal NIC rate, bytes/s
     node_nic_Bps: Mapping[str, float] = field(default_factory=_frozen)
     node_group: Mapping[str, str] = field(default_factory=_frozen)
+    alert_min_effect: float | None = None  # None: the analysis's default
+    alert_min_hours: float | None = None
 
     @classmethod
     def default(cls) -> Cluster:
@@ -93,10 +99,12 @@ def load_cluster(path: str | Path) -> Cluster:
 
 def cluster_from_dict(data: Mapping[str, Any]) -> Cluster:
     """Validate an already-parsed cluster document (the TOML layout in the module docstring)."""
-    _only(data, "", {"job", "network", "groups"})
+    _only(data, "", {"job", "network", "groups", "alerts"})
     job = _table(data, "job")
     network = _table(data, "network")
     groups = _table(data, "groups")
+    alerts = _table(data, "alerts")
+    _only(alerts, "alerts.", {"min_effect", "min_hours"})
     _only(job, "job.", {"name", "total_steps", "ranks_per_node"})
     _only(network, "network.", {"nic_Bps", "nodes"})
 
@@ -119,7 +127,17 @@ def cluster_from_dict(data: Mapping[str, Any]) -> Cluster:
         nic_Bps=_rate(network.get("nic_Bps"), "network.nic_Bps"),
         node_nic_Bps=_frozen({node: _rate(v, f"network.nodes.{node}") for node, v in nodes.items()}),
         node_group=_frozen(node_group),
+        alert_min_effect=_non_negative(alerts.get("min_effect"), "alerts.min_effect"),
+        alert_min_hours=_non_negative(alerts.get("min_hours"), "alerts.min_hours"),
     )
+
+
+def _non_negative(value: Any, where: str) -> float | None:
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, int | float) or not math.isfinite(value) or value < 0:
+        raise ClusterConfigError(f"{where} must be a number ≥ 0, got {value!r}")
+    return float(value)
 
 
 def _one_line(text: str) -> str:

@@ -148,7 +148,8 @@ def families(snapshot: dict[str, Any]) -> Iterator[Metric]:
     alerts = _gauge("alerts", "open degradation alerts, by kind", ("kind",))
     by_kind: dict[str, int] = {}
     for alert in snapshot["alerts"]:
-        by_kind[alert["kind"]] = by_kind.get(alert["kind"], 0) + 1
+        if alert.get("step_closed") is None:  # closed alerts (the series came back) are history, not open
+            by_kind[alert["kind"]] = by_kind.get(alert["kind"], 0) + 1
     for kind, count in sorted(by_kind.items()):
         alerts.add_metric([kind], count)
     yield alerts

@@ -62,8 +62,10 @@ def build_snapshot(
     window = history if window_steps is None else history.last(window_steps)
     series = store.series()
     checks = store.checks()
+    bar = {key: value for key, value in (("min_effect", cluster.alert_min_effect),
+                                         ("min_hours", cluster.alert_min_hours)) if value is not None}
     snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes),
-                                        history=history, checks=checks))
+                                        history=history, checks=checks, **bar))
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)

@@ -120,13 +120,24 @@ def test_projections(result: dict) -> None:
     # Steps 0..3 done of 1000 → 996 remain; recent step = 41/4 = 10.25 s → ETA = 10209 s.
     assert result["remaining_steps"] == 996
     assert result["eta_s"] == pytest.approx(996 * 10.25)
-    # Hours at stake of n1→n0: median β of the class = 0.75 GB/s, so its transfers would take 1/3 less.
-    # Per step the slowest receiver (r0 or r1, equal) spends 100 µs + 2 ms × (s + 1); over 4 steps 20.4 ms,
-    # a third of it per 4 steps = 1.7 ms per step; × 996 steps / 3600 s.
+    # Hours at stake of n1→n0 (DESIGN §3: remaining steps × (predicted step now − predicted step with the link
+    # at the median β of its class's healthy links), a step-time difference in which α stays as it is). The
+    # class's one healthy link, n0→n1, runs at 1 GB/s. The only network messages are layer c's, one per rank
+    # and direction; the layer waits for the busiest rank, counting what it receives and what it sends: on
+    # n1→n0, now Σ over the 4 steps of (100 µs + (s + 1) MB / 0.5 GB/s) = 0.4 ms + 20 ms = 20.4 ms; fixed
+    # 0.4 ms + 10 MB / 1 GB/s = 10.4 ms, the same as n0→n1. Saving 10 ms per 4 steps = 2.5 ms per step.
+    saving = (20.4e-3 - (0.4e-3 + 10e6 / 1e9)) / 4
+    assert saving == pytest.approx(2.5e-3, rel=1e-9)
     links = {(lk["src"], lk["dst"]): lk for lk in result["links"]}
-    assert links["n1", "n0"]["hours_at_stake"] == pytest.approx(996 * 0.0017 / 3600)
+    assert links["n1", "n0"]["hours_at_stake"] == pytest.approx(996 * saving / 3600)
     assert links["n0", "n1"]["hours_at_stake"] == 0.0
-    assert result["hours_at_stake"] == pytest.approx(996 * 0.0017 / 3600)
+    assert result["hours_at_stake"] == pytest.approx(996 * saving / 3600)
+    # "Slow links fixed": the measured 10.25 s step less that saving; speedup = work per step (Σ U / steps =
+    # 68 / 4 = 17 s) over it.
+    fixed = [w for w in result["whatif"] if w["slow_fixed"]]
+    assert len(fixed) == 1 and fixed[0]["label"] == "slow links fixed"
+    assert fixed[0]["step_s"] == pytest.approx(10.25 - saving)
+    assert fixed[0]["speedup"] == pytest.approx(17 / (10.25 - saving))
     # The step model reproduces the measured 10.25 s step; more bandwidth only helps.
     assert result["model"]["measured_step_s"] == pytest.approx(10.25)
     whatif = {w["label"]: w for w in result["whatif"]}

@@ -113,6 +113,14 @@ class StepModel:
     halo_msgs: np.ndarray
     halo_bytes: np.ndarray
     n_steps: int
+    # The same halo traffic split by directed node pair (code src node × nodes + dst node), for per-link
+    # α and β: rows of (group, pair, messages, bytes); each group is one (step, layer, receiving rank) and
+    # ``group_cell`` its (step, layer) cell, sorted.
+    group_cell: np.ndarray
+    row_group: np.ndarray
+    row_pair: np.ndarray
+    row_msgs: np.ndarray
+    row_bytes: np.ndarray
 
     def comm_s(self, alpha: float, beta: float, workers: int) -> float:
         """Modelled communication per step with the given fabric and rank count."""
@@ -131,6 +139,25 @@ class StepModel:
         residual = self.measured_s - self.path_s - self.comm_s(self.alpha_s, self.beta_Bps, self.workers)
         comm = self.comm_s(self.alpha_s / latency_div, self.beta_Bps * bandwidth_x, p)
         return max(path, path + residual + comm)
+
+    def links_comm_s(self, alpha: np.ndarray, beta: np.ndarray) -> float:
+        """Modelled communication per step with each node pair at its own α and β (indexed by pair code):
+        the halo exchange as in ``comm_s``, each message at its pair's α + n/β, the layer waiting for the
+        busiest rank counting both the messages it receives and those it sends (a way out shared by
+        several messages sends them one after another at its rate); collectives at the fleet's α
+        and the slowest pair's β, since a ring or tree over the whole job is paced by its slowest link
+        (Patarasuk & Yuan, 2009)."""
+        finite = beta[np.isfinite(beta) & (beta > 0)]
+        coll_beta = float(finite.min()) if len(finite) else float("inf")
+        group = self.coll_group
+        coll = float(np.sum(self.coll_per_step * collective_cost(self.coll_op, group, self.coll_nbytes,
+                                                                 self.alpha_s, coll_beta)))
+        if len(self.group_cell) == 0 or self.n_steps == 0:
+            return coll
+        cost = self.row_msgs * alpha[self.row_pair] + self.row_bytes / beta[self.row_pair]
+        per_group = np.bincount(self.row_group, weights=cost, minlength=len(self.group_cell))
+        starts = np.flatnonzero(np.r_[True, self.group_cell[1:] != self.group_cell[:-1]])
+        return coll + float(np.maximum.reduceat(per_group, starts).sum()) / self.n_steps
 
     def speedup(self, *, bandwidth_x: float = 1.0, latency_div: float = 1.0, workers: int | None = None) -> float:
         """Projected speedup over one ideal worker: work per step / predicted step time (NaN when steps
@@ -153,7 +180,7 @@ def step_model(window: Window, eff: Efficiency, alpha_s: float, beta_Bps: float)
     cell, msgs, nbytes_halo = _halo_groups(window)
     return StepModel(eff.workers, float(eff.useful_s.sum()) / n_steps, eff.ideal_s / n_steps,
                      eff.wall_s / n_steps, alpha, beta, op, group, nbytes, per_step, cell, msgs, nbytes_halo,
-                     n_steps)
+                     n_steps, *_halo_rows(window))
 
 
 def _collective_signatures(window: Window, n_steps: int) -> tuple[np.ndarray, ...]:
@@ -199,6 +226,36 @@ def _halo_groups(window: Window) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     msgs = np.bincount(inv, minlength=len(key)).astype(np.float64)
     nbytes = np.bincount(inv, weights=np.asarray(tr.nbytes, np.float64)[net], minlength=len(key))
     return key // n_ranks, msgs, nbytes
+
+
+def _halo_rows(window: Window) -> tuple[np.ndarray, ...]:
+    """Network transfers grouped by (step, layer, rank, receiving or sending) and, within a group, by node pair:
+    (cell of each group, then per row its group, pair code, message count and bytes)."""
+    tr = window.transfers
+    empty_i, empty_f = np.zeros(0, np.int64), np.zeros(0)
+    if len(tr) == 0 or len(window.ranks) == 0:
+        return empty_i, empty_i, empty_i, empty_f, empty_f
+    si, src_ok = window.rank_index(tr.src)
+    di, dst_ok = window.rank_index(tr.dst)
+    step_idx, step_ok = window.step_index(tr.step)
+    rank_node = np.asarray(window.rank_node, np.int64)
+    net = src_ok & dst_ok & step_ok & (rank_node[si] != rank_node[di])
+    if not net.any():
+        return empty_i, empty_i, empty_i, empty_f, empty_f
+    n_layers, n_ranks, n_pairs = max(1, len(window.layers)), len(window.ranks), len(window.nodes) ** 2
+    cell = step_idx[net] * n_layers + np.asarray(tr.layer, np.int64)[net]
+    pair = rank_node[si[net]] * len(window.nodes) + rank_node[di[net]]
+    # Each message counts at both ends: a receiver takes its messages one after another, and so does a
+    # sender whose way out carries several at once (side 0: receiving rank, 1: sending rank).
+    cell2 = np.concatenate([cell, cell])
+    rank2 = np.concatenate([di[net], si[net]])
+    side = np.repeat([0, 1], len(cell))
+    groups, group = np.unique((cell2 * n_ranks + rank2) * 2 + side, return_inverse=True)
+    rows, row = np.unique(group * n_pairs + np.concatenate([pair, pair]), return_inverse=True)
+    msgs = np.bincount(row, minlength=len(rows)).astype(np.float64)
+    weights = np.asarray(tr.nbytes, np.float64)[net]
+    nbytes = np.bincount(row, weights=np.concatenate([weights, weights]), minlength=len(rows))
+    return groups // 2 // n_ranks, rows // n_pairs, rows % n_pairs, msgs, nbytes
 
 
 def remaining_steps(total_steps: int | None, last_step: int) -> int | None:

@@ -154,9 +154,17 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
         p = named.get((lk.src, lk.dst)) if not lk.local else None
         name = None if p is None else f"{nodes[p % n]} {'out' if p < n else 'in'}"
         reason = lk.reason if p is None else ", ".join(filter(None, (lk.reason, "slow port")))
+        if p is None and lk.slow and not lk.local:
+            # A slow link no port limits, whose acknowledgements leave through a slow port (the receiver's way
+            # out, or come in through the sender's way in): that port is its cause, named as such (RFC 9293:
+            # TCP acknowledges in the reverse direction), not a second fault of unknown origin.
+            acks = [q for q in (lk.dst, n + lk.src) if slow[q]]
+            if acks:
+                q = min(acks, key=lambda q: capacity[q])
+                name = f"{nodes[q % n]} {'out' if q < n else 'in'} (acknowledgements)"
         hours = lk.hours_at_stake if reason or lk.hours_at_stake is None else 0.0  # only slow links put hours at stake
         out_links.append(replace(lk, port=name, slow=bool(reason), reason=reason, hours_at_stake=hours,
-                                 unexplained=lk.slow and not lk.local and p is None))
+                                 unexplained=lk.slow and not lk.local and name is None))
     return tuple(ports), tuple(out_links)
 
 

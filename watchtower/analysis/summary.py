@@ -15,7 +15,18 @@ import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, layer_stats, reduce_window
 from watchtower.analysis.checks import Checks, check_rate_series
-from watchtower.analysis.cusum import WARMUP, Alert, degradation_alerts
+from watchtower.analysis.cusum import (
+    FALSE_ALERTS_PER_DAY,
+    K_FAST,
+    K_SLOW,
+    MIN_EFFECT,
+    MIN_HOURS,
+    WARMUP,
+    Alert,
+    Watch,
+    chart_thresholds,
+    watch_run,
+)
 from watchtower.analysis.efficiency import (
     Efficiency,
     SerialFraction,
@@ -44,6 +55,21 @@ class WhatIf:
     workers: int
     step_s: float
     speedup: float
+    slow_fixed: bool = False  # every slow link at its class's median β instead (bandwidth_x etc. are 1)
+
+
+@dataclass(frozen=True)
+class Standing:
+    """A fault present for the whole window (a slow port or a slow link no port explains), not a change:
+    ``culprit`` the port to look at (None for a lone link), ``links`` the slow links it holds back and
+    ``hours_at_stake`` what fixing it buys the rest of the run (None without a configured total)."""
+
+    kind: str  # "slow-port" | "slow-link"
+    subject: str
+    culprit: str | None
+    links: tuple[str, ...]
+    hours_at_stake: float | None
+    message: str
 
 
 @dataclass(frozen=True)
@@ -61,7 +87,11 @@ class Analysis:
     links: tuple[LinkStats, ...]  # network links first, then node-local ones
     ports: tuple[PortStats, ...]  # by node, out before in
     stragglers: tuple[Straggler, ...]
-    alerts: tuple[Alert, ...]
+    alerts: tuple[Alert, ...]  # open and closed, by onset
+    recoveries: tuple[Alert, ...]
+    changes: tuple[Alert, ...]  # lasting changes below the bar worth an alert
+    standing: tuple[Standing, ...]
+    watch: Watch | None
     step_s: float  # mean step wall time over the window
     recent_step_s: float
     remaining_steps: int | None
@@ -78,7 +108,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             scenarios: Sequence[tuple[str, float, float, float]] = (
                 ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
             nic_Bps: np.ndarray | None = None, history: Window | None = None,
-            checks: Checks | None = None) -> Analysis:
+            min_effect: float = MIN_EFFECT, min_hours: float = MIN_HOURS,
+            false_alerts_per_day: float = FALSE_ALERTS_PER_DAY, checks: Checks | None = None) -> Analysis:
     """Analyse a window (and the run's series, when there is one) against the cluster's configuration.
 
     ``runs`` are (p, S) of earlier runs at other sizes, for the Karp–Flatt serial fraction; this window's
@@ -86,9 +117,10 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     (label, bandwidth ×, latency ÷, ranks ×) what-ifs. ``nic_Bps`` (float64 [N, 2], NaN: unknown) is each
     window node's NIC-counter rate out and in, the second witness of port capacity. ``history`` is every
     step the caller still holds in full: when given, link degradation is watched on its transfers with the
-    port sharing taken out (``links.link_rate_series``), else on ``series``. ``checks`` are the node
+    port sharing taken out (``links.link_rate_series``), else on ``series``. ``min_effect`` and
+    ``min_hours`` set the bar an alert must clear (see ``cusum.watch_run``). ``checks`` are the node
     daemons' pair checks: they measure the network links the job's own transfers do not (``link_stats``),
-    and those links' check rates are watched for degradation like the job's.
+    and those links' check rates are watched for degradation like the job's, against the same bar.
     """
     sums = reduce_window(window)
     eff = pop_efficiency(window, sums)
@@ -106,21 +138,31 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     links = link_stats(window, cluster, remaining, slow_fraction=slow_fraction, checks=checks)
     ports, links = port_stats(links, window.nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
     link_rates = None if history is None else link_rate_series(history, cluster)
-    alerts = degradation_alerts(series, window.nodes, links=link_rates, warmup=warmup) if series is not None else ()
+    bar = {"warmup": warmup, "remaining_steps": remaining, "min_effect": min_effect, "min_hours": min_hours,
+           "false_alerts_per_day": false_alerts_per_day}
+    watch = None if series is None else watch_run(series, window.nodes, links=link_rates, **bar)
     checked = {(lk.src, lk.dst) for lk in links if lk.measured_by == "check"}
-    if checked and checks is not None:
+    if watch is not None and checked and checks is not None:
         rates = check_rate_series(checks)
         keep = [j for j, pair in enumerate(rates.links) if pair in checked]
-        rates = replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
-                        link_transfer_s=rates.link_transfer_s[:, keep],
-                        link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
-        alerts = (*alerts, *degradation_alerts(rates, window.nodes, warmup=warmup))
+        if keep:
+            rates = replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
+                            link_transfer_s=rates.link_transfer_s[:, keep],
+                            link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
+            watch = _with_checked(watch, watch_run(series, window.nodes, links=rates, **bar))
     net = [lk for lk in links if not lk.local]
-    at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in net if lk.slow)
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
                        _nanmedian([lk.bandwidth_Bps for lk in net]))
+    fixer = _Fixer(model, links, len(window.nodes), remaining)
+    links = _with_stakes(fixer, links)
+    net = [lk for lk in links if not lk.local]
+    fixed_step = fixer.step_s([lk for lk in net if lk.slow])
+    at_stake = fixer.hours([lk for lk in net if lk.slow])
     whatif = tuple(_what_if(model, label, bw, lat, max(1, round(eff.workers * rx)))
                    for label, bw, lat, rx in scenarios) if eff.workers else ()
+    if eff.workers:
+        whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step, model.work_s / fixed_step, True),)
+    alerts = () if watch is None else name_alert_ports(watch.alerts, links)
     serial = None
     if len({p for p, _ in runs} | {eff.workers}) >= 2 and eff.workers >= 2 and speedup.achieved > 0:
         serial = serial_fractions([*runs, (eff.workers, speedup.achieved)])
@@ -130,11 +172,108 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         last_step=int(window.steps[-1]) if len(window.steps) else -1,
         steps=len(window.steps), nodes=window.nodes, efficiency=eff, speedup=speedup,
         layers=layer_stats(window, sums, threshold), links=links, ports=ports,
-        stragglers=find_stragglers(window, eff), alerts=name_alert_ports(alerts, links),
+        stragglers=find_stragglers(window, eff), alerts=alerts,
+        recoveries=() if watch is None else watch.recoveries, changes=() if watch is None else watch.changes,
+        standing=_standing(ports, net, alerts, fixer), watch=watch,
         step_s=step_s, recent_step_s=recent_step_s, remaining_steps=remaining,
         eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake, model=model, whatif=whatif,
         serial_fraction=serial,
     )
+
+
+def _with_checked(watch: Watch, checked: Watch) -> Watch:
+    """The job's watch plus what the pair checks' rates showed on the links only checks measure (their
+    step-time findings are the job's own, already in ``watch``)."""
+    def links_only(found: tuple[Alert, ...], more: tuple[Alert, ...]) -> tuple[Alert, ...]:
+        both = found + tuple(al for al in more if al.subject != "step time")
+        return tuple(sorted(both, key=lambda al: (al.step_began, al.kind, al.subject)))
+
+    return replace(watch, alerts=links_only(watch.alerts, checked.alerts),
+                   recoveries=links_only(watch.recoveries, checked.recoveries),
+                   changes=links_only(watch.changes, checked.changes),
+                   n_series=watch.n_series + checked.n_series - 1)
+
+
+class _Fixer:
+    """Predicted step times with chosen slow links at their class's median β (α unchanged), through the
+    step model with every node pair at its own α and β: the measured step less the modelled communication
+    as measured plus the modelled communication then (``StepModel.links_comm_s``)."""
+
+    def __init__(self, model: StepModel, links: tuple[LinkStats, ...], n_nodes: int, remaining: int | None) -> None:
+        self.model, self.n, self.remaining = model, n_nodes, remaining
+        self.alpha = np.zeros(n_nodes * n_nodes)
+        self.beta = np.full(n_nodes * n_nodes, np.inf)
+        net = [lk for lk in links if not lk.local]
+        # The class's healthy links set the rate to reach: in a small class the slow links themselves
+        # would pull a median over all of it down (in a 4-node ring one bad node is on half the links).
+        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls and not lk.slow]
+                                  or [lk.bandwidth_Bps for lk in net if lk.link_class == cls])
+                  for cls in {lk.link_class for lk in net}}
+        self.better = self.beta.copy()
+        for lk in net:
+            code = lk.src * n_nodes + lk.dst
+            self.alpha[code] = lk.latency_s if np.isfinite(lk.latency_s) else 0.0
+            if np.isfinite(lk.bandwidth_Bps) and lk.bandwidth_Bps > 0:
+                self.beta[code] = lk.bandwidth_Bps
+            self.better[code] = np.fmax(self.beta[code], median[lk.link_class])
+        self.comm_now = model.links_comm_s(self.alpha, self.beta)
+        self.now = self.step_s([])
+
+    def step_s(self, fixed: list[LinkStats]) -> float:
+        """The step time with the links ``fixed`` at their class's healthy median β."""
+        beta = self.beta.copy()
+        codes = [lk.src * self.n + lk.dst for lk in fixed]
+        beta[codes] = self.better[codes]
+        m = self.model
+        return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, beta))
+
+    def hours(self, fixed: list[LinkStats]) -> float | None:
+        """DESIGN §3: remaining steps × (predicted step time now − predicted with ``fixed`` at the median)."""
+        if self.remaining is None:
+            return None
+        return self.remaining * max(0.0, self.now - self.step_s(fixed)) / 3600.0
+
+
+def _with_stakes(fixer: _Fixer, links: tuple[LinkStats, ...]) -> tuple[LinkStats, ...]:
+    """Each slow network link with its own hours at stake (that link alone at the median β)."""
+    out = []
+    for lk in links:
+        if lk.local or not lk.slow:
+            out.append(lk)
+            continue
+        saving = max(0.0, fixer.now - fixer.step_s([lk]))
+        out.append(replace(lk, saving_per_step_s=saving, hours_at_stake=fixer.hours([lk])))
+    return tuple(out)
+
+
+def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[Alert, ...],
+              fixer: _Fixer) -> tuple[Standing, ...]:
+    """Slow ports, then slow links no port explains, that no change alert already covers (a port or link
+    that changed during the run is its alert's business), costliest first. A port's stake is what fixing
+    all the links it holds back buys at once."""
+    changed = {al.subject for al in alerts} | {(al.port or "").split(" (")[0] for al in alerts if al.port}
+    by_pair = {(lk.src_name, lk.dst_name): lk for lk in net}
+    found = []
+    slow = [p for p in ports if p.slow and p.name not in changed]
+    for node in dict.fromkeys(p.node_name for p in slow):
+        # Both ways of one node slow (a card at a lower rate): one finding, fixed together, or neither
+        # direction's fix would show while the other still held the node's exchanges back.
+        mine = [p for p in slow if p.node_name == node]
+        held = [by_pair[pair] for p in mine for pair in p.explains if pair in by_pair]
+        subject = mine[0].name if len(mine) == 1 else f"{node} out and in"
+        names = tuple(f"{lk.src_name}→{lk.dst_name}" for lk in held)
+        rates = " and ".join(f"{p.direction} {p.capacity_Bps / 1e9:.3g} GB/s" for p in mine)
+        found.append(Standing("slow-port", subject, subject, names, fixer.hours(held),
+                              f"{node} {rates} ({', '.join(dict.fromkeys(p.reason for p in mine))}) for the whole "
+                              f"window, holding back {len(names)} link{'s' * (len(names) != 1)}"))
+    for lk in net:
+        subject = f"{lk.src_name}→{lk.dst_name}"
+        if lk.slow and lk.port is None and subject not in changed:
+            found.append(Standing("slow-link", subject, None, (subject,), lk.hours_at_stake,
+                                  f"link {subject} runs at {lk.bandwidth_Bps / 1e9:.3g} GB/s ({lk.reason}) for the "
+                                  "whole window; no slow port explains it"))
+    found.sort(key=lambda f: -(f.hours_at_stake or 0.0))
+    return tuple(found)
 
 
 def _what_if(model: StepModel, label: str, bandwidth_x: float, latency_div: float, workers: int) -> WhatIf:
@@ -154,6 +293,21 @@ def _nanmedian(values: Sequence[float]) -> float:
 
 
 _POP = "POP metrics (Wagner et al., 2017)"
+
+
+def _threshold_how() -> str:
+    """The false-alarm budget worked through for two job sizes, from the same functions the charts use."""
+    parts = []
+    for links in (8, 1024):
+        arl, h_fast, h_slow = chart_thresholds(1 + links)
+        parts.append(f"{1 + links} series (step time + {links} links): ARL ≥ 4 × {1 + links} × 86,400 = "
+                     f"{arl:,.0f} → h = {h_fast:.2f}σ (k = 1), {h_slow:.2f}σ (k = 0.5)")
+    return ("each of the 4 charts of each series needs an in-control ARL ≥ 4 × series × 86,400 steps (one step per "
+            "second, under 1 false alert a day for the whole job); h solves Siegmund's ARL = (e^(2kb) − 2kb − "
+            "1)/(2k²), b = h + 1.166, for it: " + "; ".join(parts) + ".")
+
+
+_THRESHOLD_HOW = _threshold_how()
 HOW: dict[str, tuple[str, str]] = {
     "efficiency.load_balance": ("mean over ranks of compute / max over ranks of compute", _POP),
     "efficiency.communication": ("max over ranks of compute / window wall time (Σ steps of the slowest rank's step)",
@@ -225,24 +379,41 @@ HOW: dict[str, tuple[str, str]] = {
     "links.slow": ("score < −3.5 or β under a third of its class's median (outlier), β below the set fraction "
                    "(default 0.5) of nominal (below-nominal), or running at a slow port's capacity (slow port)",
                    "Iglewicz & Hoaglin (1993); third and fraction: common practice, no source"),
-    "links.hours_at_stake": ("slow links: remaining steps × per-step time the slowest receiver on the link would "
-                             "save at the class's median β (its transfer time × (1 − β/β_median)); an upper estimate",
-                             "model above"),
+    "links.hours_at_stake": ("slow links: remaining steps × (predicted step time now − predicted step time with "
+                             "this link alone at the median β of its class's links not judged slow), both through the "
+                             "step model with every node pair at its own α and β (see whatif.slow_fixed); 0 for "
+                             "links not slow",
+                             "DESIGN §3; Hockney (1994)"),
     "stragglers": ("ranks whose modified z-score of log compute exceeds +3.5", "Iglewicz & Hoaglin (1993)"),
-    "alerts": ("one-sided tabular CUSUM, k = 0.5σ, h = 5σ, on medians of 4-step blocks clipped to μ0 ± 2.5σ "
-               "(μ0, σ = median, 1.4826·MAD of the first 40 steps; for a link σ ≤ μ0/4); step time upward, "
-               "each link's per-step median transfer rate with port sharing taken out (see "
-               "links.concurrency) downward; "
-               "reported when the next block confirms a change of 5 % or more (40 % for a link); began = "
-               "least-squares change "
-               "point; port: the one explaining the link, else the sender's way out when all its links "
-               "dropped, else the receiver's way in likewise",
-               "Page (1954); Montgomery, SQC; block, clip and 5 %: common practice, no source"),
+    "alerts": ("robust per-step CUSUM (Page 1954; tabular form, Montgomery SQC) on log step time (rises) and "
+               "each link's log per-step median rate with port sharing taken out (falls; see links.concurrency); "
+               "μ0, σ = median, 1.4826·MAD (scipy's scale='normal') of the in-control period: the first 40 "
+               "points, then every point since the last change (newest 400), σ × (1 + 1/√n) for n points "
+               "(σ ≥ 1 %, ≤ 25 % for a link); points clipped to ±4σ; per series four one-sided charts, fast "
+               "k = 1σ and patient k = 0.5σ (after 200 in-control points) each way; an alarm counts when the "
+               "next point is still past k; began = least-squares change point; after a change the level is "
+               "re-learned from 8 points and the charts re-armed at h/2 (fast initial response, Lucas & "
+               "Crosier 1982). Threshold: " + _THRESHOLD_HOW + " An alert needs a step-time change of ≥ 10 % or "
+               "≥ 1 h at stake (cluster file / flags), and for a link a fall of ≥ 40 % of its rate; smaller "
+               "lasting changes are listed under changes. A return nearer the old level than the degraded one "
+               "closes the alert with a recovery. port: the one explaining the link, else the sender's way "
+               "out when all its links dropped, else the receiver's way in likewise",
+               "Page (1954); Montgomery, SQC; Siegmund (1985); Lucas & Crosier (1982); Hawkins (1987, "
+               "self-starting); clip, 10 %, 1 h, 40 %, 400, 200: common practice, no source"),
+    "standing": ("slow ports, then slow links no port explains, for the whole window and not covered by a change "
+                 "alert; stake = Σ hours at stake of the links they hold back", "definition; see ports.slow"),
     "eta_s": ("remaining steps × mean step time of the recent steps", "plain product"),
-    "hours_at_stake": ("sum of hours at stake over the slow links", "model above"),
+    "hours_at_stake": ("remaining steps × (predicted step time now − predicted step time with every slow link at "
+                       "its class's healthy median β): the 'slow links fixed' what-if", "DESIGN §3; model above"),
     "whatif": ("compute path × p/p' + unexplained time + modelled collectives (cheapest of ring, recursive "
                "doubling, Rabenseifner) and halo exchange (max over ranks of Σ α + n/β)",
                "Thakur, Rabenseifner & Gropp (2005); Patarasuk & Yuan (2009)"),
+    "whatif.slow_fixed": ("measured step − modelled communication with each node pair at its own α, β + the same "
+                          "with every slow link's β raised to the median of its class's links not judged slow; "
+                          "halo messages at their pair's α + n/β, summed per rank over what it receives and, "
+                          "apart, what it sends (a shared way out sends one after another), the layer waiting "
+                          "for the busiest; collectives at the fleet α and the slowest pair's β",
+                          "Hockney (1994); Patarasuk & Yuan (2009)"),
     "serial_fraction": ("Karp–Flatt e = (1/S − 1/p)/(1 − 1/p) per run size", "Karp & Flatt (1990)"),
 }
 
@@ -294,9 +465,14 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
         "local_links": [_link_json(lk) for lk in local],
         "stragglers": [{"rank": st.rank, "node": st.node, "compute_s": _f(st.compute_s), "score": _f(st.score)}
                        for st in a.stragglers],
-        "alerts": [{"kind": al.kind, "subject": al.subject, "step_began": al.step_began,
-                    "step_detected": al.step_detected, "baseline": _f(al.baseline), "recent": _f(al.recent),
-                    "message": al.message, "port": al.port} for al in a.alerts],
+        "alerts": [_alert_json(al) for al in a.alerts],
+        "recoveries": [_alert_json(al) for al in a.recoveries],
+        "changes": [{**_alert_json(al), "open": False} for al in a.changes],
+        "standing": [{"kind": f.kind, "subject": f.subject, "culprit": f.culprit, "links": list(f.links),
+                      "hours_at_stake": _f(f.hours_at_stake), "message": f.message} for f in a.standing],
+        "alert_design": None if a.watch is None else {
+            "series": a.watch.n_series, "chart_arl": _f(a.watch.arl), "h_fast": _f(a.watch.h_fast),
+            "h_slow": _f(a.watch.h_slow), "k_fast": K_FAST, "k_slow": K_SLOW},
         "recent_step_s": _f(a.recent_step_s),
         "remaining_steps": a.remaining_steps,
         "eta_s": _f(a.eta_s),
@@ -304,13 +480,21 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
         "model": {"alpha_s": _f(a.model.alpha_s), "bandwidth_Bps": _f(a.model.beta_Bps),
                   "path_s": _f(a.model.path_s), "measured_step_s": _f(a.model.measured_s)},
         "whatif": [{"label": w.label, "bandwidth_x": w.bandwidth_x, "latency_div": w.latency_div,
-                    "workers": w.workers, "step_s": _f(w.step_s), "speedup": _f(w.speedup)} for w in a.whatif],
+                    "workers": w.workers, "step_s": _f(w.step_s), "speedup": _f(w.speedup),
+                    "slow_fixed": w.slow_fixed} for w in a.whatif],
         "serial_fraction": None if a.serial_fraction is None else [
             {"workers": int(p), "speedup": _f(sp), "serial_fraction": _f(ef)}
             for p, sp, ef in zip(a.serial_fraction.workers, a.serial_fraction.speedup,
                                  a.serial_fraction.serial_fraction, strict=True)],
         "how": {key: {"definition": d, "source": src} for key, (d, src) in HOW.items()},
     }
+
+
+def _alert_json(al: Alert) -> dict[str, Any]:
+    return {"kind": al.kind, "subject": al.subject, "step_began": al.step_began, "step_detected": al.step_detected,
+            "step_closed": al.step_closed, "open": al.step_closed is None and al.kind != "recovered",
+            "baseline": _f(al.baseline), "recent": _f(al.recent), "effect": _f(al.effect),
+            "hours_at_stake": _f(al.hours_at_stake), "message": al.message, "port": al.port}
 
 
 def _link_json(lk: LinkStats) -> dict[str, Any]:

@@ -15,20 +15,45 @@ from .feed import Snapshot
 from .table import ColumnSpec, Record, RecordTable, SortKey
 from .view import TableView
 
+# Standing faults first, then open alerts, closed ones and recoveries (in the default order of every key).
+_GROUP = {"standing": 3, "open": 2, "closed": 1, "recovered": 0}
+
 SORT_KEYS = (
-    SortKey("detected", lambda r: r["step_detected"], how=("alerts", "degradation")),
-    SortKey("began", lambda r: r["step_began"], how=("alerts", "degradation")),
-    SortKey("hours at stake", lambda r: r["hours"], how=("hours_at_stake",)),
-    SortKey("kind", lambda r: r["kind"], descending=False, how=("alerts",)),
+    SortKey("detected", lambda r: (_GROUP[r["state"]], r["step_detected"] or -1), how=("alerts", "degradation")),
+    SortKey("began", lambda r: (_GROUP[r["state"]], r["step_began"] or -1), how=("alerts", "degradation")),
+    SortKey("hours at stake", lambda r: (_GROUP[r["state"]], r["hours"] or 0.0), how=("hours_at_stake",)),
+    SortKey("kind", lambda r: (-_GROUP[r["state"]], r["kind"]), descending=False, how=("alerts",)),
 )
 
-COLUMNS = (
-    ColumnSpec("kind", 16),
-    ColumnSpec("subject", 17),
-    ColumnSpec("began", 7),
-    ColumnSpec("detected", 8),
-    ColumnSpec("stake", 6),
-)
+MARK = {"standing": "■", "open": "▲", "closed": "✓", "recovered": "↺"}
+
+
+def columns(records: list[Record]) -> tuple[ColumnSpec, ...]:
+    """Kind, subject and culprit as wide as their longest value: a name that names the culprit is never cut
+    (the table scrolls sideways instead)."""
+
+    def widest(label: str, values: list[str]) -> int:
+        return max([len(label), *map(len, values)])
+
+    return (
+        ColumnSpec("", 1),
+        ColumnSpec("kind", widest("kind", [r["kind"] for r in records])),
+        ColumnSpec("subject", widest("subject", [r["subject"] for r in records])),
+        ColumnSpec("culprit", widest("culprit", [r["port"] or "" for r in records])),
+        ColumnSpec("span", widest("span", [span(r) for r in records])),
+        ColumnSpec("stake", 6),
+    )
+
+
+def span(record: Record) -> str:
+    """Steps the finding covers: the whole window, from its onset (still open), or onset to return."""
+    if record["state"] == "standing":
+        return "whole window"
+    if record["state"] == "recovered":
+        return f"back {record['step_began']}"
+    end = record.get("step_closed")
+    return f"{record['step_began']}–{'' if end is None else end}"
+
 
 _LINK_SUBJECT = re.compile(r"^\s*(?P<src>.+?)\s*(?:→|->)\s*(?P<dst>.+?)\s*$")
 
@@ -44,6 +69,13 @@ def subject_link(alert: Record, links: list[dict[str, Any]]) -> dict[str, Any] |
 
 def next_check(alert: Record, link: dict[str, Any] | None) -> Text:
     """A cautious first step that gathers evidence and leaves any change to the site's operators."""
+    if alert.get("state") == "standing":
+        return Text.assemble(
+            "Compare the negotiated speed and the error counters of ",
+            fmt.literal(alert["port"] or alert["subject"]),
+            " with its peers together with your network operators before anyone re-cables, reseats or changes "
+            "a link setting; follow their and the vendor's guidance.",
+        )
     began = f"step {alert['step_began']}"
     if link is not None and link["port"] is not None:
         return Text.assemble(
@@ -72,50 +104,65 @@ def next_check(alert: Record, link: dict[str, Any] | None) -> Text:
 
 
 class AlertsView(TableView):
-    """A table of alerts; the selected one is explained in full below it."""
+    """Standing faults above the change alerts, open and closed; the selected one explained below."""
 
     def __init__(self) -> None:
         super().__init__(id="alerts")
+        self._records: list[Record] = []
 
     def compose(self) -> ComposeResult:
         yield Static(id="alerts-title", classes="view-title")
         yield RecordTable(
-            SORT_KEYS, lambda r: f"{r['kind']}\x00{r['subject']}\x00{r['step_began']}", self._cells, id="alerts-table"
+            SORT_KEYS, lambda r: f"{r['state']}\x00{r['kind']}\x00{r['subject']}\x00{r['step_began']}", self._cells,
+            id="alerts-table"
         )
         with VerticalScroll(id="alert-box"):
             yield Static(id="alert-text")
 
     def on_mount(self) -> None:
-        """Columns are fixed; the full alert is in the panel below the table."""
-        self.table.set_columns(COLUMNS)
-
+        """Columns follow the widest name; the full alert is in the panel below the table."""
+        self.table.set_columns(columns([]))
 
     def show(self, snapshot: Snapshot) -> None:
-        """Refill the table, attaching to each alert its link and the hours at stake."""
-        records = []
+        """Refill the table: standing findings, then alerts (each with its own stake) and recoveries."""
+        records = [{"kind": f["kind"], "subject": f["subject"], "port": f["culprit"], "state": "standing",
+                    "step_began": None, "step_detected": None, "step_closed": None, "hours": f["hours_at_stake"],
+                    "message": f["message"], "link": None, "links": f["links"]}
+                   for f in snapshot.get("standing", [])]
         for alert in snapshot["alerts"]:
             link = subject_link(alert, snapshot["links"])
-            hours = link["hours_at_stake"] if link is not None else snapshot["hours_at_stake"]
-            records.append({**alert, "link": link, "hours": hours})
+            state = "open" if alert.get("step_closed") is None else "closed"
+            hours = alert.get("hours_at_stake", link["hours_at_stake"] if link is not None else None)
+            port = alert.get("port") or (link["port"] if link is not None else None)
+            records.append({**alert, "port": port, "link": link, "hours": hours, "state": state})
+        for event in snapshot.get("recoveries", []):
+            records.append({**event, "link": None, "hours": None, "state": "recovered"})
+        self._records = records
+        self.table.set_columns(columns(records))
         self.table.set_records(records)
         self._retitle()
         self._describe()
 
-    def _cells(self, alert: Record) -> list[Text]:
+    def _cells(self, record: Record) -> list[Text]:
+        bad = record["state"] in ("standing", "open")
         return [
-            Text.assemble(("▲ ", self.paint("bad")), fmt.fit(fmt.literal(alert["kind"]), 14)),
-            fmt.fit(fmt.literal(alert["subject"]), 17),
-            Text(str(alert["step_began"]), justify="right"),
-            Text(str(alert["step_detected"]), justify="right"),
-            Text(fmt.hours(alert["hours"]), justify="right"),
+            Text(MARK[record["state"]], self.paint("bad" if bad else "quiet")),
+            fmt.literal(record["kind"]),
+            fmt.literal(record["subject"]),
+            fmt.literal(record["port"] or ""),
+            Text(span(record)),
+            Text(fmt.hours(record["hours"]), justify="right"),
         ]
 
     def _retitle(self) -> None:
         table = self.table
+        counts = {state: 0 for state in MARK}
+        for record in self._records:
+            counts[record["state"]] += 1
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
         title = Text.assemble(
-            (fmt.counted(len(table.rows), "alert"), self.paint("title")),
-            f" by {table.sort_key.label} {arrow} · steps when the drift began and when it was detected",
+            (f"{counts['standing']} standing · {counts['open']} open · {counts['closed']} closed", self.paint("title")),
+            f" by {table.sort_key.label} {arrow} · span: steps from onset to return",
         )
         self.query_one("#alerts-title", Static).update(title)
 
@@ -123,24 +170,24 @@ class AlertsView(TableView):
         alert = self.table.record_at_cursor()
         panel = self.query_one("#alert-text", Static)
         if alert is None:
-            panel.update(Text("No degradation detected in this run so far.", self.paint("quiet")))
+            panel.update(Text("No standing fault and no degradation in this run so far.", self.paint("quiet")))
             self.set_detail(Text("no alerts"))
             return
-        scope = "on this link" if alert["link"] is not None else "for the job (all slow links)"
-        panel.update(
-            Text.assemble(
-                ("▲ ", self.paint("bad")),
-                fmt.literal(alert["kind"]),
-                " on ",
-                fmt.literal(alert["subject"]),
-                f" — began at step {alert['step_began']}, detected at step {alert['step_detected']}, "
-                f"{fmt.hours(alert['hours'])} at stake {scope}.\n",
-                fmt.literal(alert["message"]),
-                ("\nnext check: ", self.paint("title")),
-                next_check(alert, alert["link"]),
-            )
-        )
+        if alert["state"] == "standing":
+            about = Text.assemble(
+                ("■ ", self.paint("bad")), fmt.literal(alert["subject"]), " — slow for the whole window; fixing it "
+                f"would save {fmt.hours(alert['hours'])} of the remaining run (links held back: "
+                f"{', '.join(alert['links'])}).\n", fmt.literal(alert["message"]))
+        elif alert["state"] == "recovered":
+            about = Text.assemble(("↺ ", self.paint("quiet")), fmt.literal(alert["message"]))
+        else:
+            end = alert.get("step_closed")
+            closed = "" if end is None else f", back to its earlier level from step {end}"
+            about = Text.assemble(
+                (f"{MARK[alert['state']]} ", self.paint("bad" if alert["state"] == "open" else "quiet")),
+                fmt.literal(alert["kind"]), " on ", fmt.literal(alert["subject"]),
+                f" — began at step {alert['step_began']}, detected at step {alert['step_detected']}{closed}; "
+                f"{fmt.hours(alert['hours'])} at stake (the step-time change since then, over the remaining steps).\n",
+                fmt.literal(alert["message"]))
+        panel.update(Text.assemble(about, ("\nnext check: ", self.paint("title")), next_check(alert, alert["link"])))
         self.set_detail(Text.assemble(fmt.literal(alert["kind"]), " · ", fmt.literal(alert["subject"])))
-
-
-

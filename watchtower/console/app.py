@@ -203,7 +203,8 @@ class ConsoleApp(App[None]):
             return
         self.query_one(JobHeader).snapshot = snapshot
         self.query_one(CulpritStrip).snapshot = snapshot
-        self.query_one(ViewBar).alerts = len(snapshot["alerts"])
+        self.query_one(ViewBar).alerts = sum(1 for a in snapshot["alerts"] if a.get("step_closed") is None) + \
+            len(snapshot.get("standing", []))
         self.query_one(ReplayBar).position = self._shown_position(snapshot["replay"])
         self.current_view.snapshot = snapshot
 

@@ -170,8 +170,13 @@ class JobHeader(Widget):
     def _stakes(self, snap: Snapshot) -> list[Text]:
         loss = snap["loss"]
         stake = snap["hours_at_stake"]
+        fixed = next((w for w in snap.get("whatif", []) if w.get("slow_fixed")), None)
         return [
-            self._figure("at stake", fmt.hours(stake), bad=stake is not None and stake > 0),
+            Text.assemble(
+                self._figure("at stake", fmt.hours(stake), bad=stake is not None and stake > 0),
+                self._figure(" · slow links fixed", f"{fmt.seconds(fixed['step_s'])}/step")
+                if fixed is not None and stake else "",
+            ),
             self._figure("ETA", fmt.duration(snap["eta_s"])),
             Text.assemble(
                 self._figure("frames", fmt.count(loss["frames"])),

@@ -152,12 +152,16 @@ class LinksView(TableView):
         slow = sum(1 for link in links if link["slow"])
         checked = next((label for link in links if (label := checked_label(link))), "")
         hidden = table.hidden_columns
+        fixed = next((w for w in self.snapshot.get("whatif", []) if w.get("slow_fixed")), None) \
+            if self.snapshot else None
         title = Text.assemble(
             (fmt.counted(table.shown_records, "link"), self.paint("title")),
             f" by {table.sort_key.label} {arrow} · ",
             (SLOW_MARK, self.paint("bad")),
             f" {slow} slow",
             f" ({CHECK_MARK}: {checked})" if checked else "",
+            f" (fixed: step {fmt.seconds(fixed['step_s'])}, speedup {fmt.number(fixed['speedup'])})"
+            if fixed is not None and slow else "",
         )
         if "%nom" not in hidden:
             title.append(" · %nom = throughput ÷ nominal")

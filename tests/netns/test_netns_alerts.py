@@ -1,0 +1,63 @@
+"""Alerts and the "slow links fixed" prediction against the kernel's truth (tbf token buckets between
+network namespaces): a healthy run raises nothing, and the step time predicted with a slowed way out
+fixed is the step time the same job measures with nothing slowed.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pytest
+from netns_cluster import Job, NetnsCluster
+from netns_helpers import report, run_job, tc_rate
+
+pytestmark = pytest.mark.netns
+
+FABRIC_BPS = 400e6
+SLOW = "node1"
+# The "slow links fixed" runs use 100 Mb/s and 25 Mb/s, so the token buckets (not the two CPU cores that move
+# every byte through the veth pairs, ~25 MB/s here) set every link's rate in both runs.
+FIXED_FABRIC_BPS = 100e6
+# 1000 steps kept short: two layers, 16 KiB halos, 1 ms of compute per layer (a few ms per step).
+HEALTHY = Job(steps=1000, layers=2, exchange_bytes=16_384, compute_ms=1.0, seed=5)
+# The namespace scenario of the issue: the same job with one node's way out at a quarter of the fabric rate,
+# then with nothing slowed.
+FIXED_JOB = Job(steps=30, layers=4, exchange_bytes=262_144, compute_ms=1.0, seed=6)
+
+
+def _shape(cluster: NetnsCluster, slow_bps: float | None, fabric_bps: float = FABRIC_BPS) -> None:
+    for node in cluster.nodes:
+        cluster.shape(node, tc_rate(fabric_bps))
+    if slow_bps is not None:
+        cluster.shape(SLOW, tc_rate(slow_bps))
+
+
+def test_a_healthy_thousand_step_run_raises_no_alert(netns_cluster: NetnsCluster,
+                                                      tmp_path_factory: pytest.TempPathFactory) -> None:
+    _shape(netns_cluster, None)
+    snapshot = report(run_job(netns_cluster, HEALTHY, Path(tmp_path_factory.mktemp("healthy"))))
+    assert snapshot["window"]["last_step"] == HEALTHY.steps - 1
+    assert snapshot["alerts"] == [], snapshot["alerts"]
+    assert snapshot["standing"] == [], snapshot["standing"]
+
+
+@pytest.fixture(scope="module")
+def slowed_and_clean(netns_cluster: NetnsCluster,
+                     tmp_path_factory: pytest.TempPathFactory) -> tuple[dict[str, Any], dict[str, Any]]:
+    _shape(netns_cluster, FIXED_FABRIC_BPS / 4, FIXED_FABRIC_BPS)
+    slowed = report(run_job(netns_cluster, FIXED_JOB, Path(tmp_path_factory.mktemp("quarter"))))
+    _shape(netns_cluster, None, FIXED_FABRIC_BPS)
+    clean = report(run_job(netns_cluster, FIXED_JOB, Path(tmp_path_factory.mktemp("clean"))))
+    return slowed, clean
+
+
+def test_slow_links_fixed_predicts_the_clean_run(slowed_and_clean: tuple[dict[str, Any], dict[str, Any]]) -> None:
+    """The issue's bar: within ±10 % of the step time measured by the same job with nothing slowed."""
+    slowed, clean = slowed_and_clean
+    assert {(lk["src"], lk["dst"]) for lk in slowed["links"] if lk["slow"]} >= {(SLOW, "node0"), (SLOW, "node2")}
+    fixed = next(w for w in slowed["whatif"] if w["slow_fixed"])
+    measured_clean = clean["window"]["step_s"]
+    assert slowed["window"]["step_s"] > 1.3 * measured_clean  # the quarter-rate way out did cost time
+    assert fixed["step_s"] == pytest.approx(measured_clean, rel=0.10), (fixed, measured_clean,
+                                                                        slowed["window"]["step_s"])
