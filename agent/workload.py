@@ -509,7 +509,6 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
     world = len(config.peers)
     names = [f"layer.{i:02d}" for i in range(config.layers)]
     slab = Slab(config.rank, config.layers, config.seed)
-    reps = slab.reps_for(config.compute_ms)
     grad = np.zeros(max(world, config.exchange_bytes // 8))
     with contextlib.ExitStack() as cleanup:
         ctx = zmq.Context()
@@ -533,7 +532,7 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
         for step in range(config.steps):
             for layer, name in enumerate(names):
                 with probe.compute(name):
-                    slab.compute(layer, reps)
+                    slab.compute(layer, config.compute_ms)
             grad[:] = np.resize(slab.x.ravel(), len(grad))
             with probe.exchange(GRAD_LAYER, op=wire.Op.ALLREDUCE, group=world, nbytes=grad.nbytes):
                 ring.allreduce(grad, step)

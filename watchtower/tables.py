@@ -112,17 +112,17 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
                       [[str(st["rank"]), visible(st["node"]), seconds(st["compute_s"]), number(st["score"])]
                        for st in s["stragglers"]], right={0, 2, 3}, width=width)
     if s.get("standing"):
-        out += ["", "standing findings (slow for the whole window)"]
+        out += ["", *_wrap("standing findings (slow for the whole window)", width)]
         for f in s["standing"]:
             out += _wrap(f"  {visible(f['message'])}; {hours(f['hours_at_stake'])} at stake", width, indent="    ")
     if s["alerts"]:
-        out += ["", "alerts, by the step they began"]
+        out += ["", *_wrap("alerts, by the step they began", width)]
         for a in sorted(s["alerts"], key=_alert_order):
             closed = "" if a.get("step_closed") is None else f", back from {a['step_closed']}"
             out += _wrap(f"  step {a['step_detected']} (began ~{a['step_began']}{closed}): {visible(a['message'])}",
                          width, indent="    ")
     if s.get("changes"):
-        out += ["", "changes below the alert bar (recorded, no alert)"]
+        out += ["", *_wrap("changes below the alert bar (recorded, no alert)", width)]
         for a in sorted(s["changes"], key=_alert_order):
             out += _wrap(f"  step {a['step_detected']} (began ~{a['step_began']}): {visible(a['message'])}", width,
                          indent="    ")

@@ -158,7 +158,9 @@ def test_weights_favour_uncertain_and_suspected_pairs() -> None:
 
 
 def test_a_checked_link_that_slows_down_raises_an_alert() -> None:
-    """Checks arriving step by step; p2→p3 halves from step 120: an alert on that link, begun near 120."""
+    """Checks arriving step by step; p2→p3 halves from step 120, and the job's ring allreduce, which waits for
+    its slowest hop, slows with it: an alert on that link, begun near 120 (a link's fall that costs the job
+    nothing raises no alert; see test_cusum)."""
     ingest = Ingest()
     for node in range(len(NODES)):
         ingest.feed(10**18, _daemon_frames(node, 200 + node))
@@ -166,7 +168,8 @@ def test_a_checked_link_that_slows_down_raises_an_alert() -> None:
     _collective_job(ingest, steps=1)
     seq = 1
     for step in range(1, 240):
-        _collective_job_step(ingest, step)
+        jitter = int(rng.normal(0, 1_000_000))  # 1 ms of noise on a 25 ms allreduce
+        _collective_job_step(ingest, step, allreduce_ns=(50_000_000 if step >= 120 else 25_000_000) + jitter)
         for node in range(len(NODES)):
             peers, table = _check_table(rng, node, 1, dst_slow=(2, 3) if step >= 120 else None)
             ingest.feed(10**18, wire.encode_checks(200 + node, seq, 0, period_s=6.0, budget=0.01, deferred_total=0,
@@ -178,13 +181,15 @@ def test_a_checked_link_that_slows_down_raises_an_alert() -> None:
     assert 100 <= alerts[0]["step_began"] <= 130
 
 
-def _collective_job_step(ingest: Ingest, step: int, t0: int = 10**18) -> None:
+def _collective_job_step(ingest: Ingest, step: int, t0: int = 10**18, allreduce_ns: int = 25_000_000) -> None:
+    """One step of the allreduce-only job; ``allreduce_ns`` is the exposed allreduce (the step is 15 ms more)."""
     for rank in range(len(NODES)):
         table = np.array([[1], [int(wire.Op.ALLREDUCE)], [wire.NO_PEER], [len(NODES)], [1 << 20],
-                          [5_000_000], [30_000_000], [wire.UNKNOWN_WAIT]], np.int64)
+                          [5_000_000], [5_000_000 + allreduce_ns], [wire.UNKNOWN_WAIT]], np.int64)
         ingest.feed(t0 + step, wire.encode_step(
-            100 + rank, step + 1, t0 + step * 40_000_000, step=step, duration_ns=40_000_000, dropped_total=0,
-            schema_id=1, layer_ns=np.array([[5_000_000, 0], [0, 25_000_000]], np.int64), exchanges=table))
+            100 + rank, step + 1, t0 + step * 40_000_000, step=step, duration_ns=15_000_000 + allreduce_ns,
+            dropped_total=0, schema_id=1, layer_ns=np.array([[5_000_000, 0], [0, allreduce_ns]], np.int64),
+            exchanges=table))
 
 
 def test_checks_from_an_unknown_daemon_are_rejected_and_counted() -> None:

@@ -116,7 +116,8 @@ def test_alerts_are_listed_in_the_order_they_began() -> None:
     snap["alerts"] = [{**a, "step_began": began, "step_detected": began + 9, "message": f"alert {began}"}
                       for a, began in zip(snap["alerts"] * 2, [300, 12, 260, 77, 150, 5], strict=False)]
     text = format_snapshot(snap, width=200)
-    listed = [int(m) for m in re.findall(r"\(began ~(\d+)\)", text)]
+    alerts = text.split("\nalerts, by the step they began\n", 1)[1].split("\n\n", 1)[0]
+    listed = [int(m) for m in re.findall(r"\(began ~(\d+)[,)]", alerts)]
     assert listed == sorted(listed) and len(listed) == len(snap["alerts"])
 
 

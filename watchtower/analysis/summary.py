@@ -161,7 +161,8 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     whatif = tuple(_what_if(model, label, bw, lat, max(1, round(eff.workers * rx)))
                    for label, bw, lat, rx in scenarios) if eff.workers else ()
     if eff.workers:
-        whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step, model.work_s / fixed_step, True),)
+        speedup_fixed = model.work_s / fixed_step if fixed_step > 0 else math.nan
+        whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step, speedup_fixed, True),)
     alerts = () if watch is None else name_alert_ports(watch.alerts, links)
     serial = None
     if len({p for p, _ in runs} | {eff.workers}) >= 2 and eff.workers >= 2 and speedup.achieved > 0:
