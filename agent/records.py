@@ -63,7 +63,7 @@ def is_note(frames: list[bytes] | list[memoryview]) -> bool:
 
 def fits(frames: list[bytes] | list[memoryview]) -> bool:
     """Whether a message may be recorded: no more frames and bytes than any valid message could have."""
-    return len(frames) <= MAX_PARTS and sum(len(frame) for frame in frames) <= MAX_MESSAGE_BYTES
+    return len(frames) <= MAX_PARTS and sum(map(len, frames)) <= MAX_MESSAGE_BYTES
 
 
 def encode_record(time_ns: int, frames: list[bytes] | list[memoryview]) -> bytes:

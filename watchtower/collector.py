@@ -186,10 +186,10 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
-            if frames and self.ingest.foreign(_sender(frames[0])):  # one job per recording
+            if self.ingest.has_foreign and frames and self.ingest.foreign(_sender(frames[0])):  # one job per file
                 self.ingest.ledger.reject("other-job")
                 continue
-            if not frames or not fits(frames) or is_note(frames):  # would read back as a tick or a note
+            if not frames or not fits(frames) or (len(frames) == 1 and is_note(frames)):  # a tick or a note?
                 self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames)
                                           else "oversize-message")
                 continue

@@ -50,7 +50,7 @@ class Ingest:
             self.first_received_ns = received_ns
         if not frames:  # a collector's clock tick (see watchtower.collector): time passes, nobody spoke
             return None
-        if is_note(frames):
+        if len(frames) == 1 and is_note(frames):
             self._note(frames[0])
             return None
         try:
@@ -62,7 +62,7 @@ class Ingest:
         if header.kind in (wire.Kind.CLOCK_PONG, wire.Kind.CHECK_PEERS):  # only the collector sends these
             self.ledger.reject("unexpected-kind")
             return None
-        if self._foreign(message):
+        if (self._foreign_senders or isinstance(message, wire.Schema)) and self._foreign(message):
             self.ledger.reject("other-job")
             return None
         implausible = self._implausible(message, received_ns)
@@ -87,6 +87,11 @@ class Ingest:
         elif isinstance(message, wire.CheckResults) and not self.store.add_checks(message, received_ns):
             self.ledger.reject("unknown-schema")
         return message
+
+    @property
+    def has_foreign(self) -> bool:
+        """Whether any sender of another job has been refused (then ``foreign`` is worth asking)."""
+        return bool(self._foreign_senders)
 
     def foreign(self, sender: int | None) -> bool:
         """Whether a sender belongs to another job than the one this ingest (and its recording) holds."""

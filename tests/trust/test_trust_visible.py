@@ -49,7 +49,8 @@ def test_report_and_a_following_console_show_keys_and_every_refusal_by_reason(
             assert cli.main(["report", str(record), "--json"]) == 0
             return json.loads(capsys.readouterr().out)
 
-        wait_for(lambda: set(reported()["loss"]["rejected_reasons"]) >= set(foes), "refusals noted in the recording")
+        wait_for(lambda: set(reported()["loss"]["rejected_reasons"]) >= set(foes), "refusals noted in the recording",
+                 60.0)  # a collector process and two handshakes on a loaded machine
         snap = reported()
         assert snap["security"]["mode"] == "keys" and snap["loss"]["rejected"] >= 2
         feed = AttachFeed(record, security=None)
