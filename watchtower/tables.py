@@ -92,7 +92,8 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     out += _table(
         ["src", "dst", "bytes", "beta", "alpha", "throughput", "of nominal", "score", "verdict", "hours at stake"],
         [[visible(lk["src"]), visible(lk["dst"]), count(lk["bytes"]), rate(lk["bandwidth_Bps"]),
-          seconds(lk["latency_s"]), rate(lk["throughput_Bps"]), percent(lk["of_nominal"]), number(lk["score"]),
+          "clamped" if lk.get("latency_clamped") else seconds(lk["latency_s"]), rate(lk["throughput_Bps"]),
+          percent(lk["of_nominal"]), number(lk["score"]),
           "SLOW" + (f" ({lk['reason']})" if lk.get("reason") else "") if lk["slow"] else "",
           hours(lk["hours_at_stake"]) if lk["slow"] else ""]
          for lk in s["links"]],

@@ -139,7 +139,7 @@ async def test_replay_keys_call_feed_controls(replay_app: ConsoleApp, controls: 
         ("pause", None),
         ("step", 1),
         ("seek", 1310),
-        ("seek", 1110),
+        ("seek", 1210),  # "[" counts from the 1,310 just asked for
         ("seek", 0),
         ("seek", 2400),
         ("set_speed", 4.0),

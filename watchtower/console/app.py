@@ -10,7 +10,7 @@ from typing import Any, ClassVar
 from textual import events
 from textual.app import App, ComposeResult
 from textual.binding import Binding, BindingType
-from textual.containers import Vertical
+from textual.containers import Horizontal, Vertical
 from textual.message import Message
 from textual.reactive import reactive
 from textual.timer import Timer
@@ -125,7 +125,9 @@ class ConsoleApp(App[None]):
                 yield NodesView()
                 yield AlertsView()
                 yield HowView()
-            yield Input(placeholder="filter rows by name · enter keeps · esc clears", id="filter")
+            with Horizontal(id="filter-bar"):
+                yield Static("/ rows named ", id="filter-label")
+                yield Input(placeholder="part of a name · enter keeps · esc clears", id="filter")
             yield Static(id="detail")
             yield Footer(compact=True, show_command_palette=False)
         yield Static(id="too-small")
@@ -233,6 +235,9 @@ class ConsoleApp(App[None]):
         if self.snapshot is not None:
             shown.snapshot = self.snapshot
         self.query_one("#detail", Static).update(shown.detail)
+        wanted = shown.table.filter_text if isinstance(shown, TableView) else ""
+        self.query_one("#filter", Input).value = wanted  # each view keeps its own filter
+        self.query_one("#filter-bar").display = bool(wanted)
         self._focus_view()
 
     def _focus_view(self) -> None:
@@ -297,7 +302,7 @@ class ConsoleApp(App[None]):
             self.notify("This view has no rows to filter.")
             return
         box = self.query_one("#filter", Input)
-        box.display = True
+        self.query_one("#filter-bar").display = True
         box.value = self.current_view.table.filter_text
         box.focus()
 
@@ -322,7 +327,7 @@ class ConsoleApp(App[None]):
         box = self.query_one("#filter", Input)
         if clear:
             box.value = ""
-        box.display = bool(box.value)
+        self.query_one("#filter-bar").display = bool(box.value)
         self._focus_view()
 
     def action_export(self) -> None:

@@ -80,7 +80,7 @@ class NodesView(TableView):
             ColumnSpec("out", 4),
             ColumnSpec("way in", fmt.RATE_WIDTH + 1),
             ColumnSpec("in", 4),
-            ColumnSpec("heard", fmt.SECONDS_WIDTH, drop=8),
+            ColumnSpec("heard", fmt.SECONDS_WIDTH, drop=1),
             ColumnSpec("ranks", 6, drop=5),
             ColumnSpec("NIC out", fmt.RATE_WIDTH, drop=3),
             ColumnSpec("NIC in", fmt.RATE_WIDTH, drop=4),
