@@ -66,7 +66,7 @@ def run_job(cluster: NetnsCluster, job: Job, workdir: Path,
             raise AssertionError(f"{node} did not finish in {JOB_TIMEOUT_S:g} s:\n"
                                  f"{_tail(workdir / f'{node}.log')}") from None
         assert status == 0, f"{node} exited with {status}:\n{_tail(workdir / f'{node}.log')}"
-    for node, daemon in zip(cluster.nodes, node_daemons, strict=True):
+    for node, daemon in zip(cluster.nodes, node_daemons, strict=False):  # none without ``daemons``
         status = stop(daemon, signal.SIGTERM)  # it sends its last results and leaves
         assert status == 0, f"{node}'s daemon exited with {status}:\n{_tail(workdir / f'{node}-daemon.log')}"
     status = stop(collector, signal.SIGINT)  # the ranks flushed their frames before exiting

@@ -3,6 +3,7 @@ check every ordered pair, and their CHECK records reach the store as link record
 
 from __future__ import annotations
 
+import socket
 import subprocess
 import sys
 import threading
@@ -23,6 +24,12 @@ from watchtower.ingest import Ingest
 DEADLINE_S = 30.0
 NOMINAL_BPS = 20e6
 BUDGET = 0.2  # high, so the slots are short and the test quick (slot 0.13 s, period 0.4 s for 3 nodes)
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return sock.getsockname()[1]
 
 
 def _sampler() -> NodeSampler:
@@ -97,7 +104,7 @@ def test_daemons_find_each_other_through_the_collector_and_check_every_pair(
 def test_a_cluster_file_listing_replaces_the_collector(tmp_path: Path, endpoint: str,
                                                        zmq_context: zmq.Context) -> None:
     nodes = ["f-a", "f-b"]
-    listed = {node: f"127.0.0.1:{free_tcp_port()}" for node in nodes}
+    listed = {node: f"127.0.0.1:{_free_port()}" for node in nodes}
     collector = Collector(endpoint, Ingest(), context=zmq_context)
     daemons = _daemons(tmp_path, collector, zmq_context, nodes, listed)
     names = {d.sender: d.node for d in daemons}
