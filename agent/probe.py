@@ -20,6 +20,7 @@ markers: at a later ``end_step``, one or two steps behind on a busy device (see 
 from __future__ import annotations
 
 import secrets
+import threading
 import time
 from collections import deque
 from collections.abc import Sequence
@@ -251,6 +252,7 @@ class Probe:
         self._transfers: list[Transfer] = []
         self._windows: list[Window] = []
         self._loose: list[Marker] = []
+        self._finishing = threading.Lock()  # ``finish`` may come from a collective's callback thread
         self._pending: deque[PendingStep] = deque()
         self._origin: Marker = None if self._pool is None else self._pool.take()
         self.last_mark: Marker = None  # device: the end marker of the latest region or exchange
@@ -396,8 +398,10 @@ class Probe:
     def finish(self, transfer: Transfer, stream: Stream = None) -> None:
         """Mark the end of ``transfer`` on ``stream``. May be called from another thread (a collective's
         completion callback); it belongs to the step during which it is called."""
-        transfer.end = self._device_pool().take(stream)
-        self._transfers.append(transfer)
+        pool = self._device_pool()
+        with self._finishing:  # not between end_step's copy of this step's transfers and its clearing them
+            transfer.end = pool.take(stream)
+            self._transfers.append(transfer)
 
     def mark(self) -> Marker:
         """Device timing: a marker on the current stream now, owned by this step (a ``wait_window`` start)."""
@@ -479,10 +483,12 @@ class Probe:
 
     def _end_device_step(self) -> bool:
         last = self._pool.take()  # type: ignore[union-attr]
+        with self._finishing:
+            transfers = self._transfers.copy()
+            self._transfers.clear()
         self._pending.append(PendingStep(self.step_index, self._step_wall, self._origin, last, self._regions.copy(),
-                                         self._blocking.copy(), self._transfers.copy(), self._windows.copy(),
-                                         self._loose.copy()))
-        for pending in (self._regions, self._blocking, self._transfers, self._windows, self._loose):
+                                         self._blocking.copy(), transfers, self._windows.copy(), self._loose.copy()))
+        for pending in (self._regions, self._blocking, self._windows, self._loose):
             pending.clear()  # cleared, not replaced: the regions hold these very lists
         self._origin = last
         self.step_index += 1
