@@ -17,7 +17,6 @@ import zmq
 from agent import wire
 from agent.daemon import CheckOptions, NodeDaemon
 from agent.nodestats import NicCounters, NodeSampler
-from tests.conftest import free_tcp_port
 from watchtower.collector import Collector
 from watchtower.ingest import Ingest
 
