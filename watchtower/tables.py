@@ -115,7 +115,9 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     if s.get("standing"):
         out += ["", *_wrap("standing findings (slow for the whole window)", width)]
         for f in s["standing"]:
-            out += _wrap(f"  {visible(f['message'])}; {hours(f['hours_at_stake'])} at stake", width, indent="    ")
+            out += _wrap(f"  {visible(f['message'])}; {hours(f['hours_at_stake'])} at stake if fixed alone, "
+                         f"{hours(f.get('hours_once_others_fixed'))} once the other slow links are fixed", width,
+                         indent="    ")
     if s["alerts"]:
         out += ["", *_wrap("alerts, by the step they began", width)]
         for a in sorted(s["alerts"], key=_alert_order):

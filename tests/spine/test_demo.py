@@ -59,3 +59,15 @@ def test_healthy_demo_links_fit_no_faster_than_their_ports() -> None:
     for lk in healthy:
         assert lk["bandwidth_Bps"] <= payload * (1 + FIT_ACCURACY), lk
         assert lk["bandwidth_Bps"] <= lk["nominal_Bps"] * (1 + FIT_ACCURACY), lk
+
+
+def test_a_fault_hidden_behind_another_is_still_priced() -> None:
+    """At the end of the demo the degraded way out is slower than the slow card, so on the step's critical
+    path fixing the card alone buys nothing (DESIGN §3's figure, 0 h) — yet it is the next bottleneck: its
+    standing finding also says what it holds back once every other slow link is fixed (definition)."""
+    story = generator()
+    snapshot = load_recording(DEMO_RECORDING, None, 120)  # the console's window: the newest 120 steps
+    card = next(f for f in snapshot["standing"] if f["subject"].startswith(story.SLOW_NODE))
+    assert card["hours_at_stake"] == pytest.approx(0.0, abs=0.05)
+    assert card["hours_once_others_fixed"] > 1.0
+    assert card["hours_once_others_fixed"] <= snapshot["hours_at_stake"] + 1e-9  # a part of fixing everything

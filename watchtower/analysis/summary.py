@@ -70,6 +70,7 @@ class Standing:
     links: tuple[str, ...]
     hours_at_stake: float | None
     message: str
+    hours_once_others_fixed: float | None = None  # what it holds back after every other slow link is fixed
 
 
 @dataclass(frozen=True)
@@ -253,6 +254,16 @@ def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[
     that changed during the run is its alert's business), costliest first. A port's stake is what fixing
     all the links it holds back buys at once."""
     changed = {al.subject for al in alerts} | {(al.port or "").split(" (")[0] for al in alerts if al.port}
+    every_slow = [lk for lk in net if lk.slow]
+
+    def once_others_fixed(held: list[LinkStats]) -> float | None:
+        """Two faults on one critical path hide each other: fixing either alone buys nothing while the other
+        holds the step, so each is also priced as the last one standing."""
+        if fixer.remaining is None:
+            return None
+        others = [lk for lk in every_slow if lk not in held]
+        return fixer.remaining * max(0.0, fixer.step_s(others) - fixer.step_s(every_slow)) / 3600.0
+
     by_pair = {(lk.src_name, lk.dst_name): lk for lk in net}
     found = []
     slow = [p for p in ports if p.slow and p.name not in changed]
@@ -266,14 +277,15 @@ def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[
         rates = " and ".join(f"{p.direction} {p.capacity_Bps / 1e9:.3g} GB/s" for p in mine)
         found.append(Standing("slow-port", subject, subject, names, fixer.hours(held),
                               f"{node} {rates} ({', '.join(dict.fromkeys(p.reason for p in mine))}) for the whole "
-                              f"window, holding back {len(names)} link{'s' * (len(names) != 1)}"))
+                              f"window, holding back {len(names)} link{'s' * (len(names) != 1)}",
+                              once_others_fixed(held)))
     for lk in net:
         subject = f"{lk.src_name}→{lk.dst_name}"
         if lk.slow and lk.port is None and subject not in changed:
             found.append(Standing("slow-link", subject, None, (subject,), lk.hours_at_stake,
                                   f"link {subject} runs at {lk.bandwidth_Bps / 1e9:.3g} GB/s ({lk.reason}) for the "
-                                  "whole window; no slow port explains it"))
-    found.sort(key=lambda f: -(f.hours_at_stake or 0.0))
+                                  "whole window; no slow port explains it", once_others_fixed([lk])))
+    found.sort(key=lambda f: (-(f.hours_at_stake or 0.0), -(f.hours_once_others_fixed or 0.0)))
     return tuple(found)
 
 
@@ -470,7 +482,8 @@ def analysis_to_json(a: Analysis) -> dict[str, Any]:
         "recoveries": [_alert_json(al) for al in a.recoveries],
         "changes": [{**_alert_json(al), "open": False} for al in a.changes],
         "standing": [{"kind": f.kind, "subject": f.subject, "culprit": f.culprit, "links": list(f.links),
-                      "hours_at_stake": _f(f.hours_at_stake), "message": f.message} for f in a.standing],
+                      "hours_at_stake": _f(f.hours_at_stake), "hours_once_others_fixed": _f(f.hours_once_others_fixed),
+                      "message": f.message} for f in a.standing],
         "alert_design": None if a.watch is None else {
             "series": a.watch.n_series, "chart_arl": _f(a.watch.arl), "h_fast": _f(a.watch.h_fast),
             "h_slow": _f(a.watch.h_slow), "k_fast": K_FAST, "k_slow": K_SLOW},

@@ -127,6 +127,7 @@ class AlertsView(TableView):
         """Refill the table: standing findings, then alerts (each with its own stake) and recoveries."""
         records = [{"kind": f["kind"], "subject": f["subject"], "port": f["culprit"], "state": "standing",
                     "step_began": None, "step_detected": None, "step_closed": None, "hours": f["hours_at_stake"],
+                    "hours_once_others_fixed": f.get("hours_once_others_fixed"),
                     "message": f["message"], "link": None, "links": f["links"]}
                    for f in snapshot.get("standing", [])]
         for alert in snapshot["alerts"]:
@@ -176,8 +177,9 @@ class AlertsView(TableView):
         if alert["state"] == "standing":
             about = Text.assemble(
                 ("■ ", self.paint("bad")), fmt.literal(alert["subject"]), " — slow for the whole window; fixing it "
-                f"would save {fmt.hours(alert['hours'])} of the remaining run (links held back: "
-                f"{', '.join(alert['links'])}).\n", fmt.literal(alert["message"]))
+                f"alone would save {fmt.hours(alert['hours'])} of the remaining run, "
+                f"{fmt.hours(alert.get('hours_once_others_fixed'))} once the other slow links are fixed (links held "
+                f"back: {', '.join(alert['links'])}).\n", fmt.literal(alert["message"]))
         elif alert["state"] == "recovered":
             about = Text.assemble(("↺ ", self.paint("quiet")), fmt.literal(alert["message"]))
         else:
