@@ -42,10 +42,13 @@ class _Snapshots:
         return self.clock() - self._last >= self.period_s
 
     def build(self, replay: dict[str, Any] | None = None, recorder: dict[str, Any] | None = None) -> dict[str, Any]:
+        """The period runs from the end of a build: on a loaded machine a build slower than the period would
+        otherwise make every record ingested after it due for another build, and the feed would crawl."""
+        snapshot = build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
+                                  security=self.security, window_steps=self.window_steps, replay=replay,
+                                  recorder=recorder, now_ns=None if self.wall is None else self.wall())
         self._last = self.clock()
-        return build_snapshot(self.ingest, self.cluster, source=self.source, meta=self.meta,
-                              security=self.security, window_steps=self.window_steps, replay=replay,
-                              recorder=recorder, now_ns=None if self.wall is None else self.wall())
+        return snapshot
 
 
 class LiveFeed:
