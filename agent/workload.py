@@ -467,7 +467,6 @@ class RingAllreduce:
 def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) -> WorkloadResult:
     """Run the job for ``config.steps`` steps. ``listener`` may be a socket already bound to this rank's
     address (tests bind port 0 to avoid races). Raises ``ConnectError`` / ``WorkloadError``."""
-    world = len(config.peers)
     if config.collective:
         return _run_collective(config, listener)
     names = [f"layer.{i:02d}" for i in range(config.layers)]
@@ -476,15 +475,7 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
     with contextlib.ExitStack() as cleanup:  # unwinds in reverse: links, then probe, then its context
         ctx = zmq.Context()
         cleanup.callback(ctx.term)  # waits up to the probe's linger for queued frames to reach the collector
-        try:
-            probe = Probe(config.rank, world, config.node, config.collector, layers=names, job="halo-ring",
-                          context=ctx, curve_keys=config.curve_keys, spool=config.spool)
-        except zmq.ZMQError as exc:
-            raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
-        except OSError as exc:
-            raise ConnectError(f"cannot write the spool {config.spool}: {exc.strerror}") from None
-        except NotARecording as exc:
-            raise ConnectError(str(exc)) from None
+        probe = _open_probe(config, ctx, names, "halo-ring")
         cleanup.callback(probe.close)
         ring = HaloRing(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
                         max(sizes), config.connect_timeout_s)
@@ -504,6 +495,19 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
 GRAD_LAYER = "grad.allreduce"
 
 
+def _open_probe(config: WorkloadConfig, ctx: zmq.Context, layers: list[str], job: str) -> Probe:
+    """This rank's probe, or a one-line ConnectError that says what could not be opened."""
+    try:
+        return Probe(config.rank, len(config.peers), config.node, config.collector, layers=layers, job=job,
+                     context=ctx, curve_keys=config.curve_keys, spool=config.spool)
+    except zmq.ZMQError as exc:
+        raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
+    except OSError as exc:
+        raise ConnectError(f"cannot write the spool {config.spool}: {exc.strerror}") from None
+    except NotARecording as exc:
+        raise ConnectError(str(exc)) from None
+
+
 def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> WorkloadResult:
     """The job that only uses collectives: layers compute, then the step's gradient is allreduced."""
     world = len(config.peers)
@@ -513,15 +517,7 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
     with contextlib.ExitStack() as cleanup:
         ctx = zmq.Context()
         cleanup.callback(ctx.term)
-        try:
-            probe = Probe(config.rank, world, config.node, config.collector, layers=[*names, GRAD_LAYER],
-                          job="ring-allreduce", context=ctx, curve_keys=config.curve_keys, spool=config.spool)
-        except zmq.ZMQError as exc:
-            raise ConnectError(f"cannot publish to {config.collector}: {exc.strerror}") from None
-        except OSError as exc:
-            raise ConnectError(f"cannot write the spool {config.spool}: {exc.strerror}") from None
-        except NotARecording as exc:
-            raise ConnectError(str(exc)) from None
+        probe = _open_probe(config, ctx, [*names, GRAD_LAYER], "ring-allreduce")
         cleanup.callback(probe.close)
         ring = RingAllreduce(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
                              config.rank, world, config.connect_timeout_s)
