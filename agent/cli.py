@@ -291,7 +291,9 @@ def _run(args: argparse.Namespace) -> int:
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
-    run_daemon(args.collector, args.node, args.local, args.interval, stop, curve_keys=keys, checks=checks)
+    run_daemon(args.collector, args.node, args.local, args.interval, stop, curve_keys=keys, checks=checks,
+               on_refused=lambda why: print(f"{PROG}: warning: the collector refuses this node's uplink: {why}; "
+                                            "nothing from this node arrives until that is fixed", file=sys.stderr))
     return 0
 
 

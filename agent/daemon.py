@@ -24,6 +24,7 @@ import socket
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -31,6 +32,7 @@ import zmq
 
 from agent import wire
 from agent.checkplan import DEFAULT_BUDGET, WeightBook, check_sizes, slot_seconds
+from agent.handshake import HandshakeWatch
 from agent.nodestats import NodeFigures, NodeSampler
 from agent.pairchecks import CheckConfig, CheckListener, PairChecker
 from agent.probe import CLOCK_EVERY_S, SCHEMA_EVERY
@@ -72,7 +74,7 @@ class NodeDaemon:
     def __init__(self, collector_endpoint: str, node: str, local_endpoint: str | None = None, *,
                  interval_s: float = 1.0, sampler: NodeSampler | None = None,
                  context: zmq.Context | None = None, curve_keys: tuple[bytes, bytes, bytes] | None = None,
-                 checks: CheckOptions | None = None) -> None:
+                 checks: CheckOptions | None = None, on_refused: Callable[[str], None] | None = None) -> None:
         if interval_s <= 0:
             raise ValueError("the sampling interval must be positive")
         self.node = node
@@ -89,6 +91,9 @@ class NodeDaemon:
         self._sampler = sampler or NodeSampler()
         self.checker: PairChecker | None = None
         self._check_options = checks
+        self.handshake: HandshakeWatch | None = None  # with keys: the uplink's handshakes, for on_refused
+        self._on_refused = on_refused
+        self._told: str | None = None
         self._ipc_path: Path | None = None  # set once bound: the file close() removes
         self._made_dir = self._prepare_ipc(self.local_endpoint)
         self._own_context = context is None
@@ -106,6 +111,7 @@ class NodeDaemon:
             if curve_keys is not None:  # (own public, own secret, collector public): the uplink leaves the node
                 b = self._backend
                 b.curve_publickey, b.curve_secretkey, b.curve_serverkey = curve_keys
+                self.handshake = HandshakeWatch(b)
             self._backend.connect(collector_endpoint)
             self._control = self._socket(zmq.PAIR, linger=0)
             self._control.bind(f"{inproc}-control")
@@ -176,6 +182,7 @@ class NodeDaemon:
                 next_at = max(next_at + self.interval_s, time.monotonic())
                 self.publish(self._sampler.sample())
                 self.check_tick()
+                self._tell_refusal()
         finally:
             if self.checker is not None:  # its last results leave before the relay stops
                 self.checker.stop()
@@ -183,6 +190,13 @@ class NodeDaemon:
                 self._send_results()
             self._steer.send(b"TERMINATE")
             proxy.join()
+
+    def _tell_refusal(self) -> None:
+        """Say once why the collector refuses the uplink (again only if the reason changes)."""
+        reason = self.handshake.refused() if self.handshake is not None else None
+        if reason is not None and reason != self._told and self._on_refused is not None:
+            self._on_refused(reason)
+        self._told = reason
 
     def check_tick(self) -> None:
         """Send the checker's results since the last tick, and (unless a cluster file lists the listeners)
@@ -282,6 +296,9 @@ class NodeDaemon:
             self.checker.stop()
             self.checker.listener.close()
             self.checker = None
+        if self.handshake is not None:
+            self.handshake.close()
+            self.handshake = None
         for sock in self._sockets:
             sock.close()
         self._sockets.clear()
@@ -311,10 +328,11 @@ def _listening(path: Path) -> bool:
 
 def run_daemon(collector_endpoint: str, node: str, local_endpoint: str | None = None, interval_s: float = 1.0,
                stop_event: threading.Event | None = None,
-               curve_keys: tuple[bytes, bytes, bytes] | None = None, checks: CheckOptions | None = None) -> None:
+               curve_keys: tuple[bytes, bytes, bytes] | None = None, checks: CheckOptions | None = None,
+               on_refused: Callable[[str], None] | None = None) -> None:
     """Run a node daemon until ``stop_event`` is set (forever without one)."""
     daemon = NodeDaemon(collector_endpoint, node, local_endpoint, interval_s=interval_s, curve_keys=curve_keys,
-                        checks=checks)
+                        checks=checks, on_refused=on_refused)
     try:
         daemon.serve(stop_event or threading.Event())
     finally:

@@ -46,25 +46,11 @@ from agent.device import (
     split_exposed,
     union_ns,
 )
+from agent.handshake import HANDSHAKE_EVENTS, refusal_in_words
 from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
 CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
-_HANDSHAKE_EVENTS = (zmq.EVENT_HANDSHAKE_SUCCEEDED | zmq.EVENT_HANDSHAKE_FAILED_NO_DETAIL
-                     | zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL | zmq.EVENT_HANDSHAKE_FAILED_AUTH)
-
-
-def _refusal(event: int, value: int) -> str:
-    """A refused handshake, in words for the agent's user."""
-    if event == zmq.EVENT_HANDSHAKE_FAILED_AUTH:
-        return "its key is not on the collector's allow-list" if value == 400 else f"authentication failed ({value})"
-    if event == zmq.EVENT_HANDSHAKE_FAILED_PROTOCOL:
-        if value == zmq.PROTOCOL_ERROR_ZMTP_MECHANISM_MISMATCH:
-            return "the collector and this agent disagree on keys (one uses them, the other not)"
-        if value == zmq.PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC:
-            return "the collector's key is not the one given with --server-key"
-        return f"protocol error {value}"
-    return "the handshake failed"
 
 
 class _Region:
@@ -279,7 +265,7 @@ class Probe:
                 sock.setsockopt(zmq.LINGER, 1000)
                 if curve_keys is not None:
                     sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
-                self._monitor = sock.get_monitor_socket(_HANDSHAKE_EVENTS)
+                self._monitor = sock.get_monitor_socket(HANDSHAKE_EVENTS)
                 sock.connect(endpoint)
             except zmq.ZMQError:  # a bad key or endpoint: leave nothing open that would hang the context
                 self._close_monitor(sock)
@@ -634,7 +620,7 @@ class Probe:
                 if event["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
                     self._refused = None
                 else:
-                    self._refused = _refusal(event["event"], event["value"])
+                    self._refused = refusal_in_words(event["event"], event["value"])
         return self._refused
 
     def close(self, drain_s: float = 2.0) -> None:

@@ -104,6 +104,25 @@ def test_a_node_daemon_uplink_with_keys(keyed: Collector, keys: KeyFolder, zmq_c
     assert [node.name for node in keyed.ingest.store.nodes] == ["node7"]
 
 
+def test_a_refused_node_daemon_says_why_once(keyed: Collector, keys: KeyFolder, zmq_context: zmq.Context,
+                                             tmp_path: Path) -> None:
+    """A daemon whose key is not on the allow-list gets nothing through: its own side must say why, once."""
+    told: list[str] = []
+    daemon = NodeDaemon(keyed.bound, "node8", f"ipc://{tmp_path / 'd.ipc'}", context=zmq_context, interval_s=0.05,
+                        curve_keys=curve_keys(stranger(tmp_path / "other"), keys.head_public), on_refused=told.append)
+    stop = threading.Event()
+    thread = threading.Thread(target=daemon.serve, args=(stop,))
+    thread.start()
+    try:
+        wait_for(lambda: told, "the daemon telling why it is refused")
+    finally:
+        stop.set()
+        thread.join()
+        daemon.close()
+    assert told == ["its key is not on the collector's allow-list"]
+    assert not keyed.ingest.store.nodes
+
+
 # ------------------------------------------------------------------------------------------ the commands
 
 def test_collect_with_keys_end_to_end(keys: KeyFolder, tmp_path: Path) -> None:
