@@ -7,12 +7,13 @@ network links nor counted in hours at stake.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from watchtower.analysis.efficiency import FAR_BELOW_PEERS, OUTLIER_Z, RELATIVE_JITTER
-from watchtower.analysis.robust import fit_hockney, modified_z
+from watchtower.analysis.robust import HockneyFit, fit_hockney, modified_z
 from watchtower.analysis.sharing import bottleneck_share
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
@@ -80,7 +81,7 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     known, di, step_idx = paired.known, paired.dst_index, paired.step_index
     link, pairs, n_links = paired.link, paired.pairs, len(paired.pairs)
     secs, nbytes, unshared = paired.seconds, paired.nbytes, paired.unshared
-    n_nodes, names = len(window.nodes), window.nodes
+    names = window.nodes
     fitted = paired.fitted
     fit_link, fit_bytes, fit_unshared = link[fitted], nbytes[fitted], unshared[fitted]
     fit = fit_hockney(fit_link, fit_bytes, fit_unshared, n_links, quantile=WAITS_UNKNOWN_QUANTILE)
@@ -95,6 +96,20 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     total_bytes = np.bincount(link, weights=nbytes, minlength=n_links)
     busy = np.bincount(link, weights=np.where(secs > 0, secs, 0.0), minlength=n_links)
     count = np.bincount(link, minlength=n_links)
+    return judge_links(pairs, names, cluster, fit, total_bytes, busy, count, wall_s, remaining_steps,
+                       lambda shrink: _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps),
+                                                       len(window.ranks)),
+                       slow_fraction=slow_fraction, threshold=threshold)
+
+
+def judge_links(pairs: np.ndarray, names: tuple[str, ...], cluster: Cluster, fit: HockneyFit,
+                total_bytes: np.ndarray, busy: np.ndarray, count: np.ndarray, wall_s: float,
+                remaining_steps: int | None, saving_per_step: Callable[[np.ndarray], np.ndarray], *,
+                slow_fraction: float = SLOW_FRACTION, threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
+    """Each link's figures and verdicts from its fit and sums (from a window's transfers, or from per-step
+    summaries): network links first. ``saving_per_step`` maps each link's shrink (the share of its transfer
+    time the class's median β would save) to the mean time per step that saves."""
+    n_nodes, n_links = len(names), len(pairs)
     src, dst = pairs // n_nodes, pairs % n_nodes
     local = src == dst
     classes = [cluster.link_class(names[s], names[d]) for s, d in zip(src, dst, strict=True)]
@@ -124,7 +139,7 @@ def link_stats(window: Window, cluster: Cluster, wall_s: float, remaining_steps:
     # Every network link's possible saving: a link found slow later (through the port that limits it) needs
     # it too; only slow links' hours are added up as at stake.
     shrink = _shrink(beta, median_beta, local)
-    saving = _saving_per_step(link, step_idx, di, secs, shrink, len(window.steps), len(window.ranks))
+    saving = saving_per_step(shrink)
     out = []
     for i in np.argsort(local, kind="stable"):
         nom = nominal[i]
@@ -229,12 +244,23 @@ def _unshared(window: Window, known: np.ndarray, link: np.ndarray, pairs: np.nda
     n_nodes, n_links = len(window.nodes), len(pairs)
     src, dst = pairs[link] // n_nodes, pairs[link] % n_nodes
     lo = (window.transfers.start_s + np.nan_to_num(window.transfers.wait_s, nan=0.0))[known]
-    moving = (src != dst) & (secs > 0) & (nbytes > 0) & np.isfinite(secs) & np.isfinite(lo)
+    moving = moving_transfers(src, dst, lo, nbytes, secs)
     if not moving.any():
         return secs
     share = bottleneck_share(src[moving], dst[moving], lo[moving], lo[moving] + secs[moving], nbytes[moving],
                              node_nominal)
-    alpha = np.nan_to_num(fit_hockney(link, nbytes, secs, n_links).alpha_s, nan=0.0)[link[moving]]
+    alpha = np.nan_to_num(fit_hockney(link, nbytes, secs, n_links).alpha_s, nan=0.0)
+    return unshare(secs, moving, alpha[link[moving]], share)
+
+
+def moving_transfers(src: np.ndarray, dst: np.ndarray, lo: np.ndarray, nbytes: np.ndarray,
+                     secs: np.ndarray) -> np.ndarray:
+    """The transfers the sharing correction applies to: over the network, moving bytes, with known times."""
+    return (src != dst) & (secs > 0) & (nbytes > 0) & np.isfinite(secs) & np.isfinite(lo)
+
+
+def unshare(secs: np.ndarray, moving: np.ndarray, alpha: np.ndarray, share: np.ndarray) -> np.ndarray:
+    """The ``moving`` transfers' times with the byte-moving part (time − α) scaled by their share."""
     out = secs.copy()
     out[moving] = np.minimum(alpha, secs[moving]) + share * np.maximum(secs[moving] - alpha, 0.0)
     return out
