@@ -21,12 +21,17 @@ class WorstRanks:
 
 def worst_ranks(window: Window, count: int = 5) -> WorstRanks:
     """Rank each layer's ranks by exchange / (compute + exchange) summed over the window."""
-    compute = np.nansum(window.compute_s, axis=0)  # [R, L]
-    exchange = np.nansum(window.exchange_s, axis=0)
+    return worst_of_sums(window.ranks, np.nansum(window.compute_s, axis=0), np.nansum(window.exchange_s, axis=0),
+                         count)
+
+
+def worst_of_sums(ranks: np.ndarray, compute: np.ndarray, exchange: np.ndarray, count: int = 5) -> WorstRanks:
+    """``worst_ranks`` from each rank's compute and exchange [R, L] summed over the window (per-step summaries
+    keep these sums running)."""
     total = compute + exchange
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(total > 0, exchange / total, np.nan)
     order = np.argsort(np.where(np.isnan(fraction), -np.inf, -fraction), axis=0, kind="stable")[:count]
     layers = np.arange(fraction.shape[1])[None, :]
-    return WorstRanks(window.ranks[order], compute[order, layers], exchange[order, layers],
+    return WorstRanks(ranks[order], compute[order, layers], exchange[order, layers],
                       fraction[order, layers])

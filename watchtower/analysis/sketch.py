@@ -20,7 +20,8 @@ from dataclasses import dataclass
 import numpy as np
 
 RELATIVE_ACCURACY = 1e-3  # a: every quantile within 0.1 % of the exact one; ample next to timer noise
-_BUCKET_BITS = 24  # bucket indices are kept in the low bits of one int64 key: ±8 M buckets (a ≥ 1e-6)
+_BUCKET_BITS = 20  # bucket indices are kept in the low bits of one int64 key: ±524k buckets, groups < 2^43
+MIN_ACCURACY = 1e-3  # at this accuracy every positive float64 has a bucket within ±524k
 
 
 @dataclass(frozen=True)
@@ -38,6 +39,8 @@ class Sketches:
     @classmethod
     def of(cls, group: np.ndarray, values: np.ndarray, accuracy: float = RELATIVE_ACCURACY) -> Sketches:
         """Sketch ``values`` by ``group`` (non-negative ints); values that are not positive and finite are left out."""
+        if accuracy < MIN_ACCURACY:
+            raise ValueError(f"sketch accuracy below {MIN_ACCURACY} needs more bucket bits")
         values = np.asarray(values, np.float64)
         ok = np.isfinite(values) & (values > 0)
         bucket = np.ceil(np.log(values[ok]) / np.log(_gamma(accuracy))).astype(np.int64)
@@ -61,6 +64,12 @@ class Sketches:
         bucket = self.key & ((1 << _BUCKET_BITS) - 1)
         return _collapse((np.asarray(new_group, np.int64)[self.groups()] << _BUCKET_BITS) | bucket, self.count,
                          self.accuracy)
+
+    def renumber(self, groups: np.ndarray) -> Sketches:
+        """The same sketches with each group renamed to its position in ``groups`` (sorted, holding all)."""
+        position = np.searchsorted(groups, self.groups()).astype(np.int64)
+        return Sketches((position << _BUCKET_BITS) | (self.key & ((1 << _BUCKET_BITS) - 1)), self.count,
+                        self.accuracy)
 
     def quantile(self, q: float, n_groups: int) -> np.ndarray:
         """Per group, the q-quantile of its values (NaN for an empty group), within relative ``accuracy`` of

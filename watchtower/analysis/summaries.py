@@ -1,0 +1,436 @@
+"""Per-step summaries: fold each completed step's raw records once, build a window's figures from summaries.
+
+Why: a snapshot that re-analyses every raw transfer of its window costs O(transfers) each time (0.8 s at
+4096 ranks × 256 layers × 120 steps). Folded once per step into the sums and sketches below, a window's
+figures cost O(ranks × layers + links) whatever the number of transfers, and summaries of disjoint rank sets
+(shard collectors) merge into the summary of their union. The figures are the full analysis's (the same
+functions of ``aggregate``, ``efficiency``, ``links`` and ``ports`` run on the folded values); docs/snapshot.md
+says which are exact and which are sketched, with what error.
+
+``fold`` turns a ``Window`` into one ``StepSummary`` per step; ``merge_ranks`` joins summaries of one step
+from disjoint rank sets; ``SummaryWindow`` keeps the newest steps' summaries with running sums and builds
+``Figures`` from them.
+
+The link fit needs two window-level values before a step can be folded: each link's raw latency α and each
+port's busy level (``sharing``). A step is folded against a ``Reference`` holding them; ``Figures`` carries
+the window's own reference and lists the fitted steps folded against another one (``stale_steps``): the
+collector folds each step against its newest snapshot's reference and refolds stale steps while it still
+holds their raw transfers. Folded against the window's reference, β equals the full analysis's within the
+sketches' error bound.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
+from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
+from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
+from watchtower.analysis.links import (
+    MAX_FIT_TRANSFERS,
+    SLOW_FRACTION,
+    WAITS_KNOWN_QUANTILE,
+    WAITS_UNKNOWN_QUANTILE,
+    LinkStats,
+    judge_links,
+    moving_transfers,
+    unshare,
+)
+from watchtower.analysis.models import remaining_steps as _remaining
+from watchtower.analysis.ports import PortStats, port_stats
+from watchtower.analysis.robust import HockneyFit, fit_bins, fit_hockney
+from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
+from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
+from watchtower.analysis.window import Window
+from watchtower.cluster import Cluster
+
+NODE_BITS = 16  # a link is (src node << 16) | dst node: up to 65,536 nodes
+SIZE_BITS = 9  # a (link, size bin) group is link << 9 | bin, bin = ⌊8 log2 bytes⌋ (fit_hockney's bins) < 512
+SIZE_BINS_PER_OCTAVE = 8  # fit_hockney's default
+NS_PER_S = 1e9
+
+
+@dataclass(frozen=True)
+class Reference:
+    """What the link fit of a step is folded against: each link's raw α and each port's busy level."""
+
+    links: np.ndarray  # int64 link codes, sorted
+    alpha_s: np.ndarray  # float64 per link (0 where unknown)
+    level_Bps: np.ndarray  # float64 [2 N]: node's way out at node, way in at N + node (NaN: unknown)
+
+    def same(self, other: Reference | None) -> bool:
+        return other is not None and all(np.array_equal(a, b, equal_nan=True) for a, b in (
+            (self.links, other.links), (self.alpha_s, other.alpha_s), (self.level_Bps, other.level_Bps)))
+
+
+@dataclass(frozen=True)
+class Sparse:
+    """Sums by int64 key (sorted, unique): mergeable by concatenating and adding equal keys."""
+
+    key: np.ndarray
+    value: np.ndarray
+
+    @classmethod
+    def of(cls, key: np.ndarray, value: np.ndarray) -> Sparse:
+        if len(key) == 0:
+            return cls(np.empty(0, np.int64), np.empty(0, np.float64))
+        keys, where = np.unique(key, return_inverse=True)
+        return cls(keys, np.bincount(where, weights=value, minlength=len(keys)))
+
+    @staticmethod
+    def merged(parts: Sequence[Sparse]) -> Sparse:
+        return Sparse.of(np.concatenate([p.key for p in parts]), np.concatenate([p.value for p in parts]))
+
+
+@dataclass(frozen=True)
+class LinkSums:
+    """Per directed node pair (``link`` codes sorted), this step's traffic as received by its ranks."""
+
+    link: np.ndarray  # int64 (src node << NODE_BITS) | dst node
+    bytes: np.ndarray  # int64
+    transfers: np.ndarray  # int64, transfers between ranks known to the summary
+    busy_s: np.ndarray  # Σ max(t, 0): time spent transferring, known waits excluded
+    hockney: np.ndarray  # float64 [P, 5]: Σn, Σt, Σn², Σnt, Σt² over transfers with n > 0, t > 0
+    fit_count: np.ndarray  # int64: those transfers
+    t_min_s: np.ndarray
+    t_max_s: np.ndarray
+    fastest_Bps: np.ndarray  # the highest n / t of one transfer
+    waits_known: np.ndarray  # int64: transfers whose peer's readiness was known
+    worst_receiver_s: np.ndarray  # the highest Σ max(t, 0) of one receiving rank (hours at stake)
+
+    @staticmethod
+    def merged(parts: Sequence[LinkSums]) -> LinkSums:
+        """One row per link over ``parts`` (steps or shards): sums add, extremes combine."""
+        links = np.unique(np.concatenate([p.link for p in parts]))
+        out = {name: np.zeros(len(links), np.int64) for name in ("bytes", "transfers", "fit_count", "waits_known")}
+        busy, hockney = np.zeros(len(links)), np.zeros((len(links), 5))
+        t_min, t_max = np.full(len(links), np.inf), np.full(len(links), -np.inf)
+        fastest, worst = np.zeros(len(links)), np.zeros(len(links))
+        for p in parts:
+            at = np.searchsorted(links, p.link)
+            for name in out:
+                out[name][at] += getattr(p, name)
+            busy[at] += p.busy_s
+            hockney[at] += p.hockney
+            t_min[at] = np.fmin(t_min[at], p.t_min_s)
+            t_max[at] = np.fmax(t_max[at], p.t_max_s)
+            fastest[at] = np.fmax(fastest[at], p.fastest_Bps)
+            worst[at] = np.fmax(worst[at], p.worst_receiver_s)
+        return LinkSums(links, out["bytes"], out["transfers"], busy, hockney, out["fit_count"], t_min, t_max,
+                        fastest, out["waits_known"], worst)
+
+    def plain_fit(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per link, the textbook least-squares line t = α + n/β from the sufficient statistics (α, β):
+        ``robust.hockney_lstsq`` without the points. Not robust to waiting; for comparison and drill-downs."""
+        count, (sn, st, snn, snt, _stt) = self.fit_count, self.hockney.T
+        with np.errstate(invalid="ignore", divide="ignore"):
+            sxx = snn - sn * sn / count
+            slope = np.where(sxx > 0, (snt - sn * st / count) / sxx, np.nan)
+            return st / count - slope * sn / count, np.where(slope > 0, 1.0 / slope, np.nan)
+
+
+@dataclass(frozen=True)
+class StepSummary:
+    """One step of one set of ranks, folded. Exact except the two sketches (relative ``sketch.accuracy``)."""
+
+    step: int
+    layers: tuple[str, ...]
+    nodes: tuple[str, ...]
+    ranks: np.ndarray  # int32 [R], ascending
+    rank_node: np.ndarray  # int32 [R]
+    compute_ns: np.ndarray  # int64 [R, L], whole nanoseconds (a rank that did not report: 0)
+    exchange_ns: np.ndarray  # int64 [R, L]
+    step_s: np.ndarray  # float64 [R], NaN: did not report
+    path_s: np.ndarray  # float64 [L], max over ranks of compute (NaN: none reported)
+    links: LinkSums
+    bin_bytes: Sparse  # Σ bytes per (link, size bin) group, over the transfers the sketches hold
+    raw_s: Sketches  # per (link, size bin): transfer times as measured (for the raw α)
+    unshared_s: Sketches  # per (link, size bin): the same with port sharing taken out (for β)
+    busy: Sparse  # per (port << 20 | busy bin + 2^19): seconds the port's flows ran at that aggregate rate
+    reference: Reference | None  # what the link fit was folded against (None: this step's own)
+
+    @property
+    def transfers(self) -> int:
+        return int(self.links.transfers.sum())
+
+
+def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
+         accuracy: float = RELATIVE_ACCURACY) -> list[StepSummary]:
+    """One summary per step of ``window`` (each from that step's records alone)."""
+    tr = window.transfers
+    si, src_ok = window.rank_index(tr.src)
+    di, dst_ok = window.rank_index(tr.dst)
+    pos, step_ok = window.step_index(tr.step)
+    known = np.flatnonzero(src_ok & dst_ok & step_ok)
+    known = known[np.argsort(pos[known], kind="stable")]
+    bounds = np.searchsorted(pos[known], np.arange(len(window.steps) + 1))
+    nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in window.nodes])
+    out = []
+    for i, step in enumerate(window.steps.tolist()):
+        sel = known[bounds[i]:bounds[i + 1]]
+        compute, exchange = window.compute_s[i], window.exchange_s[i]
+        out.append(StepSummary(
+            step=int(step), layers=window.layers, nodes=window.nodes, ranks=np.asarray(window.ranks),
+            rank_node=np.asarray(window.rank_node), compute_ns=_ns(compute), exchange_ns=_ns(exchange),
+            step_s=np.asarray(window.step_s[i], np.float64),
+            path_s=np.fmax.reduce(compute, axis=0) if len(window.ranks) else np.full(len(window.layers), np.nan),
+            **_fold_transfers(window, sel, si[sel], di[sel], nominal, reference, accuracy), reference=reference))
+    return out
+
+
+def _ns(seconds: np.ndarray) -> np.ndarray:
+    """Seconds to whole nanoseconds (the wire's unit, so exact for recorded data); NaN to 0."""
+    return np.rint(np.nan_to_num(np.asarray(seconds, np.float64), nan=0.0) * NS_PER_S).astype(np.int64)
+
+
+def _fold_transfers(window: Window, sel: np.ndarray, si: np.ndarray, di: np.ndarray, nominal: np.ndarray,
+                    reference: Reference | None, accuracy: float) -> dict:
+    tr, n_nodes = window.transfers, len(window.nodes)
+    rank_node = np.asarray(window.rank_node, np.int64)
+    src, dst = rank_node[si], rank_node[di]
+    code = (src << NODE_BITS) | dst
+    links, link = np.unique(code, return_inverse=True)
+    n_links = len(links)
+    n = np.asarray(tr.nbytes[sel], np.float64)
+    t = tr.transfer_s[sel]
+    lo = (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[sel]
+    busy_t = np.where(t > 0, t, 0.0)
+    eligible = (n > 0) & np.isfinite(t) & (t > 0)  # what fit_hockney keeps
+    le, ne, te = link[eligible], n[eligible], t[eligible]
+    hockney = np.column_stack([np.bincount(le, weights=w, minlength=n_links)
+                               for w in (ne, te, ne * ne, ne * te, te * te)]) if n_links else np.zeros((0, 5))
+    t_min, t_max, fastest = np.full(n_links, np.inf), np.full(n_links, -np.inf), np.zeros(n_links)
+    np.fmin.at(t_min, le, te)
+    np.fmax.at(t_max, le, te)
+    np.fmax.at(fastest, le, ne / te)
+    receiver, where = np.unique(link * max(1, len(window.ranks)) + di, return_inverse=True)
+    worst = np.zeros(n_links)
+    np.fmax.at(worst, receiver // max(1, len(window.ranks)), np.bincount(where, weights=busy_t))
+    sums = LinkSums(
+        links, np.bincount(link, weights=n, minlength=n_links).astype(np.int64), np.bincount(link, minlength=n_links),
+        np.bincount(link, weights=busy_t, minlength=n_links), hockney, np.bincount(le, minlength=n_links),
+        t_min, t_max, fastest, np.bincount(link, weights=np.isfinite(tr.wait_s[sel]), minlength=n_links).astype(
+            np.int64), worst)
+
+    group = (code << SIZE_BITS) | np.where(n > 0, np.floor(np.log2(np.where(n > 0, n, 1.0)) *
+                                                            SIZE_BINS_PER_OCTAVE), 0).astype(np.int64)
+    moving = moving_transfers(src, dst, lo, n, t)
+    flows = port_flows(src[moving], dst[moving], lo[moving], lo[moving] + t[moving], n[moving], n_nodes)
+    rate, seconds = flows.aggregate, flows.seconds
+    ok = (rate > 0) & np.isfinite(rate) & (seconds > 0)
+    busy = Sparse.of((flows.port[ok] << 20) | (busy_bins(rate[ok]) + (1 << 19)), seconds[ok])
+    if reference is None:
+        level = level_of_bins(*_busy_items(busy), 2 * n_nodes)
+        alpha = np.nan_to_num(fit_hockney(link, n, t, n_links).alpha_s, nan=0.0)
+    else:
+        level = np.full(2 * n_nodes, np.nan)
+        have = min(n_nodes, len(reference.level_Bps) // 2)
+        level[:have] = reference.level_Bps[:have]
+        level[n_nodes:n_nodes + have] = reference.level_Bps[len(reference.level_Bps) // 2:][:have]
+        alpha = _lookup(reference.links, reference.alpha_s, links)
+    unshared = unshare(t, moving, alpha[link[moving]], shares(flows, level, nominal))
+    return {"links": sums, "bin_bytes": Sparse.of(group[eligible], ne),
+            "raw_s": Sketches.of(group[eligible], te, accuracy),
+            "unshared_s": Sketches.of(group[eligible], unshared[eligible], accuracy), "busy": busy}
+
+
+def _busy_items(busy: Sparse) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(port, busy bin, seconds) of a busy-level histogram."""
+    return busy.key >> 20, (busy.key & ((1 << 20) - 1)) - (1 << 19), busy.value
+
+
+def _lookup(keys: np.ndarray, values: np.ndarray, want: np.ndarray, default: float = 0.0) -> np.ndarray:
+    at = np.clip(np.searchsorted(keys, want), 0, max(0, len(keys) - 1))
+    hit = (at < len(keys)) & (keys[at] == want) if len(keys) else np.zeros(len(want), bool)
+    return np.where(hit, values[at] if len(keys) else default, default)
+
+
+def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
+    """One step's summaries from disjoint rank sets (shard collectors) as one summary of all their ranks.
+
+    Everything but the sharing-corrected sketch (``unshared_s``) and the busy histogram merges to exactly
+    the summary of the union: a port's way out also carries flows that other shards' ranks receive, so a
+    shard sees only part of its load. ``SummaryWindow.figures`` therefore takes the busy levels and the
+    sharing from the shards as they are; docs/snapshot.md says what that leaves open.
+    """
+    first = parts[0]
+    if any(p.step != first.step or p.layers != first.layers or p.nodes != first.nodes for p in parts):
+        raise ValueError("only summaries of one step, one layer list and one node list merge")
+    ranks = np.concatenate([p.ranks for p in parts])
+    order = np.argsort(ranks, kind="stable")
+    if len(np.unique(ranks)) != len(ranks):
+        raise ValueError("the rank sets overlap")
+
+    def rows(name: str) -> np.ndarray:
+        return np.concatenate([getattr(p, name) for p in parts])[order]
+
+    return replace(first, ranks=ranks[order], rank_node=rows("rank_node"), compute_ns=rows("compute_ns"),
+                   exchange_ns=rows("exchange_ns"), step_s=rows("step_s"),
+                   path_s=np.fmax.reduce(np.stack([p.path_s for p in parts]), axis=0),
+                   links=LinkSums.merged([p.links for p in parts]),
+                   bin_bytes=Sparse.merged([p.bin_bytes for p in parts]),
+                   raw_s=merge([p.raw_s for p in parts]), unshared_s=merge([p.unshared_s for p in parts]),
+                   busy=Sparse.merged([p.busy for p in parts]))
+
+
+@dataclass(frozen=True)
+class Figures:
+    """A window's figures from summaries: the full analysis's types, so every reader treats them alike."""
+
+    first_step: int
+    last_step: int
+    steps: int
+    nodes: tuple[str, ...]
+    efficiency: Efficiency
+    speedup: Speedup
+    layers: LayerStats
+    worst: WorstRanks
+    links: tuple[LinkStats, ...]
+    ports: tuple[PortStats, ...]
+    stragglers: tuple[Straggler, ...]
+    step_s: float
+    link_sums: LinkSums  # over the window, rows in ``links``' link codes
+    reference: Reference  # the window's α and busy levels: fold new steps against it
+    stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
+    fit_steps: tuple[int, ...]
+
+
+@dataclass
+class SummaryWindow:
+    """The newest ``capacity`` steps' summaries, with running exact sums over them (O(R × L) to read).
+
+    Steps arrive in order; a step already held is replaced. Ranks and layers may grow as they appear."""
+
+    capacity: int
+    summaries: deque[StepSummary] = field(default_factory=deque)
+    _rank_row: dict[int, int] = field(default_factory=dict)
+    _compute: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
+    _exchange: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
+    _reported: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+
+    def push(self, summary: StepSummary) -> None:
+        if self.summaries and summary.step <= self.summaries[-1].step:
+            if summary.step != self.summaries[-1].step:
+                raise ValueError("steps arrive in order")
+            self._add(self.summaries.pop(), -1)
+        self.summaries.append(summary)
+        self._add(summary, +1)
+        while len(self.summaries) > self.capacity:
+            self._add(self.summaries.popleft(), -1)
+
+    def _add(self, s: StepSummary, sign: int) -> None:
+        for r in s.ranks.tolist():
+            self._rank_row.setdefault(r, len(self._rank_row))
+        shape = (len(self._rank_row), len(s.layers))
+        if self._compute.shape[0] < shape[0] or self._compute.shape[1] < shape[1]:
+            self._compute, self._exchange = _grown(self._compute, shape), _grown(self._exchange, shape)
+            self._reported = _grown(self._reported[:, None], (shape[0], 1))[:, 0]
+        rows = np.array([self._rank_row[r] for r in s.ranks.tolist()], np.int64)
+        cols = slice(0, len(s.layers))
+        self._compute[rows, cols] += sign * s.compute_ns
+        self._exchange[rows, cols] += sign * s.exchange_ns
+        self._reported[rows] += sign * np.isfinite(s.step_s)
+
+    def figures(self, cluster: Cluster, *, threshold: float = COMM_BOUND_THRESHOLD,
+                slow_fraction: float = SLOW_FRACTION, nic_Bps: np.ndarray | None = None,
+                worst_count: int = 5) -> Figures:
+        """The window's figures (see ``analysis.summary.analyse`` for each one's definition)."""
+        steps = list(self.summaries)
+        newest = steps[-1]
+        layers, nodes = newest.layers, newest.nodes
+        ranks = np.array(sorted(self._rank_row), np.int32)
+        rows = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
+        node_of = {}
+        for s in steps:
+            node_of.update(zip(s.ranks.tolist(), s.rank_node.tolist(), strict=True))
+        frame = Window(layers, nodes, ranks, np.array([node_of[r] for r in ranks.tolist()], np.int32),
+                       np.array([s.step for s in steps], np.int64), np.empty((0, len(ranks), len(layers))),
+                       np.empty((0, len(ranks), len(layers))), np.empty((0, len(ranks))))
+        n_layers = len(layers)
+        compute = self._compute[rows, :n_layers] / NS_PER_S
+        exchange = self._exchange[rows, :n_layers] / NS_PER_S
+        path = np.stack([_padded(s.path_s, n_layers) for s in steps])
+        wall = np.array([np.fmax.reduce(s.step_s) if len(s.step_s) else np.nan for s in steps])
+        sums = WindowSums(compute, exchange, path, wall, self._reported[rows] > 0)
+        eff = pop_efficiency(frame, sums)
+        n_finite = int(np.count_nonzero(np.isfinite(wall)))
+        last_step = steps[-1].step
+        remaining = _remaining(cluster.total_steps, last_step)
+        links, link_sums, reference, fit_steps = _links(steps, nodes, cluster, eff.wall_s, remaining, slow_fraction)
+        ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+        return Figures(
+            first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
+            speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
+            worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
+            stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
+            link_sums=link_sums, reference=reference,
+            stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
+            fit_steps=tuple(s.step for s in fit_steps))
+
+
+def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, wall_s: float,
+           remaining: int | None, slow_fraction: float) -> tuple[tuple[LinkStats, ...], LinkSums, Reference,
+                                                                 list[StepSummary]]:
+    """Link figures as ``links.link_stats`` computes them, from the steps' link sums and sketches."""
+    n_nodes = len(nodes)
+    sums = LinkSums.merged([s.links for s in steps])
+    fit_steps = _newest_steps(steps, MAX_FIT_TRANSFERS)
+    n_links = len(sums.link)
+    raw = merge([s.raw_s for s in fit_steps])
+    unshared = merge([s.unshared_s for s in fit_steps])
+    bin_bytes = Sparse.merged([s.bin_bytes for s in fit_steps])
+    alpha = np.nan_to_num(_fit(raw, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE).alpha_s, nan=0.0)
+    busy = Sparse.merged([s.busy for s in fit_steps])
+    port, bins, seconds = _busy_items(busy)
+    reference = Reference(sums.link, alpha, level_of_bins(port, bins, seconds, 2 * n_nodes))
+    fit = _fit(unshared, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE)
+    fit_sums = LinkSums.merged([s.links for s in fit_steps])
+    at = np.searchsorted(sums.link, fit_sums.link)
+    waits_known = np.zeros(n_links, bool)
+    waits_known[at] = fit_sums.waits_known >= 0.5 * fit_sums.transfers
+    if waits_known.any():
+        fit = fit.where(waits_known, _fit(unshared, bin_bytes, sums.link, WAITS_KNOWN_QUANTILE))
+    pairs = (sums.link >> NODE_BITS) * n_nodes + (sums.link & ((1 << NODE_BITS) - 1))
+    worst = np.zeros(n_links)
+    for s in steps:
+        worst[np.searchsorted(sums.link, s.links.link)] += s.links.worst_receiver_s
+    links = judge_links(pairs, nodes, cluster, fit, sums.bytes.astype(np.float64), sums.busy_s, sums.transfers,
+                        wall_s, remaining, lambda shrink: worst * shrink / len(steps), slow_fraction=slow_fraction)
+    return links, sums, reference, fit_steps
+
+
+def _fit(sketch: Sketches, bin_bytes: Sparse, links: np.ndarray, quantile: float) -> HockneyFit:
+    """``fit_hockney`` through each (link, size bin)'s sketched time quantile."""
+    n_groups = len(bin_bytes.key)
+    numbered = sketch.renumber(bin_bytes.key)
+    t = numbered.quantile(quantile, n_groups)
+    counts = numbered.counts(n_groups)
+    link = np.searchsorted(links, bin_bytes.key >> SIZE_BITS)
+    return fit_bins(link, bin_bytes.value / counts, t, counts, len(links))
+
+
+def _newest_steps(steps: list[StepSummary], limit: int) -> list[StepSummary]:
+    """The newest whole steps holding at most ``limit`` transfers (one step at least), as
+    ``links._newest_steps`` picks them (steps after the newest one with transfers do not count)."""
+    counts = np.array([s.transfers for s in steps])
+    last = np.flatnonzero(counts)
+    if not len(last):
+        return steps[-1:]
+    upto = int(last[-1]) + 1
+    from_newest = np.cumsum(counts[:upto][::-1])
+    keep = max(1, int(np.searchsorted(from_newest, limit, side="right")))
+    return steps[max(0, upto - keep):]
+
+
+def _padded(x: np.ndarray, n: int) -> np.ndarray:
+    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), np.nan)])
+
+
+def _grown(array: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    grown = np.zeros(shape, dtype=array.dtype)
+    grown[tuple(slice(0, n) for n in array.shape)] = array
+    return grown
