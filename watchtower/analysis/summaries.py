@@ -42,7 +42,7 @@ from watchtower.analysis.links import (
 )
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, port_stats
-from watchtower.analysis.robust import HockneyFit, fit_bins, fit_hockney
+from watchtower.analysis.robust import fit_bins, fit_hockney
 from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
 from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
 from watchtower.analysis.window import Window
@@ -159,10 +159,14 @@ class StepSummary:
 
 
 def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
-         accuracy: float = RELATIVE_ACCURACY) -> list[StepSummary]:
-    """One summary per step of ``window`` (each from that step's records alone)."""
+         accuracy: float = RELATIVE_ACCURACY, peers: tuple[np.ndarray, np.ndarray] | None = None) -> list[StepSummary]:
+    """One summary per step of ``window`` (each from that step's records alone).
+
+    ``peers`` (rank ids ascending, their node indices) places the senders of received transfers when the
+    window holds only some ranks (a shard collector's); by default the window's own ranks."""
     tr = window.transfers
-    si, src_ok = window.rank_index(tr.src)
+    peer_ranks, peer_node = (np.asarray(window.ranks), np.asarray(window.rank_node)) if peers is None else peers
+    si, src_ok = _positions(np.asarray(peer_ranks), np.asarray(tr.src))
     di, dst_ok = window.rank_index(tr.dst)
     pos, step_ok = window.step_index(tr.step)
     known = np.flatnonzero(src_ok & dst_ok & step_ok)
@@ -178,8 +182,15 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
             rank_node=np.asarray(window.rank_node), compute_ns=_ns(compute), exchange_ns=_ns(exchange),
             step_s=np.asarray(window.step_s[i], np.float64),
             path_s=np.fmax.reduce(compute, axis=0) if len(window.ranks) else np.full(len(window.layers), np.nan),
-            **_fold_transfers(window, sel, si[sel], di[sel], nominal, reference, accuracy), reference=reference))
+            **_fold_transfers(window, sel, np.asarray(peer_node, np.int64)[si[sel]], di[sel], nominal, reference,
+                              accuracy), reference=reference))
     return out
+
+
+def _positions(sorted_ids: np.ndarray, ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Positions of ``ids`` in ``sorted_ids`` and a mask of those present."""
+    at = np.clip(np.searchsorted(sorted_ids, ids), 0, max(0, len(sorted_ids) - 1))
+    return at, (sorted_ids[at] == ids) if len(sorted_ids) else np.zeros(len(ids), bool)
 
 
 def _ns(seconds: np.ndarray) -> np.ndarray:
@@ -187,11 +198,10 @@ def _ns(seconds: np.ndarray) -> np.ndarray:
     return np.rint(np.nan_to_num(np.asarray(seconds, np.float64), nan=0.0) * NS_PER_S).astype(np.int64)
 
 
-def _fold_transfers(window: Window, sel: np.ndarray, si: np.ndarray, di: np.ndarray, nominal: np.ndarray,
+def _fold_transfers(window: Window, sel: np.ndarray, src: np.ndarray, di: np.ndarray, nominal: np.ndarray,
                     reference: Reference | None, accuracy: float) -> dict:
     tr, n_nodes = window.transfers, len(window.nodes)
-    rank_node = np.asarray(window.rank_node, np.int64)
-    src, dst = rank_node[si], rank_node[di]
+    dst = np.asarray(window.rank_node, np.int64)[di]
     code = (src << NODE_BITS) | dst
     links, link = np.unique(code, return_inverse=True)
     n_links = len(links)
@@ -278,6 +288,15 @@ def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
 
 
 @dataclass(frozen=True)
+class FitError:
+    """How far a link's α and β from sketches may be from the full analysis's (first order, see ``_fit_error``)
+    when every fitted step was folded against the window's reference."""
+
+    latency_s: float
+    bandwidth_rel: float
+
+
+@dataclass(frozen=True)
 class Figures:
     """A window's figures from summaries: the full analysis's types, so every reader treats them alike."""
 
@@ -294,6 +313,7 @@ class Figures:
     stragglers: tuple[Straggler, ...]
     step_s: float
     link_sums: LinkSums  # over the window, rows in ``links``' link codes
+    fit_error: dict[tuple[str, str], FitError]  # by (src, dst) node names: how far α and β may be from exact
     reference: Reference  # the window's α and busy levels: fold new steps against it
     stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
     fit_steps: tuple[int, ...]
@@ -360,21 +380,22 @@ class SummaryWindow:
         n_finite = int(np.count_nonzero(np.isfinite(wall)))
         last_step = steps[-1].step
         remaining = _remaining(cluster.total_steps, last_step)
-        links, link_sums, reference, fit_steps = _links(steps, nodes, cluster, eff.wall_s, remaining, slow_fraction)
+        links, link_sums, reference, fit_steps, fit_error = _links(steps, nodes, cluster, eff.wall_s, remaining,
+                                                                   slow_fraction)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
         return Figures(
             first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
             worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
-            link_sums=link_sums, reference=reference,
+            link_sums=link_sums, fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps))
 
 
 def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, wall_s: float,
-           remaining: int | None, slow_fraction: float) -> tuple[tuple[LinkStats, ...], LinkSums, Reference,
-                                                                 list[StepSummary]]:
+           remaining: int | None, slow_fraction: float
+           ) -> tuple[tuple[LinkStats, ...], LinkSums, Reference, list[StepSummary], dict[tuple[str, str], FitError]]:
     """Link figures as ``links.link_stats`` computes them, from the steps' link sums and sketches."""
     n_nodes = len(nodes)
     sums = LinkSums.merged([s.links for s in steps])
@@ -383,34 +404,70 @@ def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, w
     raw = merge([s.raw_s for s in fit_steps])
     unshared = merge([s.unshared_s for s in fit_steps])
     bin_bytes = Sparse.merged([s.bin_bytes for s in fit_steps])
-    alpha = np.nan_to_num(_fit(raw, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE).alpha_s, nan=0.0)
+    accuracy = raw.accuracy
+    raw_bins = _bins(raw, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE)
+    alpha = np.nan_to_num(fit_bins(*raw_bins, n_links).alpha_s, nan=0.0)
+    alpha_error, _ = _fit_error(raw_bins, n_links, accuracy)
     busy = Sparse.merged([s.busy for s in fit_steps])
     port, bins, seconds = _busy_items(busy)
     reference = Reference(sums.link, alpha, level_of_bins(port, bins, seconds, 2 * n_nodes))
-    fit = _fit(unshared, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE)
     fit_sums = LinkSums.merged([s.links for s in fit_steps])
-    at = np.searchsorted(sums.link, fit_sums.link)
     waits_known = np.zeros(n_links, bool)
-    waits_known[at] = fit_sums.waits_known >= 0.5 * fit_sums.transfers
-    if waits_known.any():
-        fit = fit.where(waits_known, _fit(unshared, bin_bytes, sums.link, WAITS_KNOWN_QUANTILE))
+    waits_known[np.searchsorted(sums.link, fit_sums.link)] = fit_sums.waits_known >= 0.5 * fit_sums.transfers
+    fit, error = None, None
+    for quantile, chosen in ((WAITS_UNKNOWN_QUANTILE, ~waits_known), (WAITS_KNOWN_QUANTILE, waits_known)):
+        if chosen.any() or fit is None:
+            bins_q = _bins(unshared, bin_bytes, sums.link, quantile)
+            # A bin's time is off by the sketch's accuracy, plus whatever the raw α's own error moved it by
+            # (the time less α is what sharing scales: at most |Δα|).
+            rel = accuracy + alpha_error[bins_q[0]] / bins_q[2]
+            fit_q, error_q = fit_bins(*bins_q, n_links), _fit_error(bins_q, n_links, rel)
+            fit = fit_q if fit is None else fit.where(chosen, fit_q)
+            error = error_q if error is None else tuple(np.where(chosen, q, e) for q, e in zip(error_q, error,
+                                                                                              strict=True))
     pairs = (sums.link >> NODE_BITS) * n_nodes + (sums.link & ((1 << NODE_BITS) - 1))
     worst = np.zeros(n_links)
     for s in steps:
         worst[np.searchsorted(sums.link, s.links.link)] += s.links.worst_receiver_s
     links = judge_links(pairs, nodes, cluster, fit, sums.bytes.astype(np.float64), sums.busy_s, sums.transfers,
                         wall_s, remaining, lambda shrink: worst * shrink / len(steps), slow_fraction=slow_fraction)
-    return links, sums, reference, fit_steps
+    src, dst = sums.link >> NODE_BITS, sums.link & ((1 << NODE_BITS) - 1)
+    bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
+              for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
+    return links, sums, reference, fit_steps, bounds
 
 
-def _fit(sketch: Sketches, bin_bytes: Sparse, links: np.ndarray, quantile: float) -> HockneyFit:
-    """``fit_hockney`` through each (link, size bin)'s sketched time quantile."""
+def _bins(sketch: Sketches, bin_bytes: Sparse, links: np.ndarray,
+          quantile: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``fit_bins``' input from sketches: per (link, size bin) its link's row, mean size, time quantile, count."""
     n_groups = len(bin_bytes.key)
     numbered = sketch.renumber(bin_bytes.key)
-    t = numbered.quantile(quantile, n_groups)
     counts = numbered.counts(n_groups)
-    link = np.searchsorted(links, bin_bytes.key >> SIZE_BITS)
-    return fit_bins(link, bin_bytes.value / counts, t, counts, len(links))
+    return (np.searchsorted(links, bin_bytes.key >> SIZE_BITS), bin_bytes.value / counts,
+            numbered.quantile(quantile, n_groups), counts)
+
+
+def _fit_error(bins: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], n_links: int,
+               rel: float | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per link, how far α (seconds) and β (relative) may be from the fit through the exact bin times, when
+    each bin's time is off by at most ``rel`` of itself: the first-order bound Σ_bins max(|f(t(1 ± rel)) − f(t)|),
+    each bin moved alone (the bins of every link are moved at once, one fit per bin position)."""
+    link, size, t, counts = bins
+    base = fit_bins(link, size, t, counts, n_links)
+    rel = np.broadcast_to(np.asarray(rel, np.float64), t.shape)
+    starts = np.searchsorted(link, link)  # bins are ordered by link
+    position = np.arange(len(link)) - starts
+    d_alpha, d_beta = np.zeros(n_links), np.zeros(n_links)
+    for k in range(int(position.max()) + 1 if len(position) else 0):
+        worst_a, worst_b = np.zeros(n_links), np.zeros(n_links)
+        for sign in (-1.0, 1.0):
+            moved = fit_bins(link, size, np.where(position == k, t * (1 + sign * rel), t), counts, n_links)
+            with np.errstate(invalid="ignore"):
+                worst_a = np.fmax(worst_a, np.abs(np.nan_to_num(moved.alpha_s) - np.nan_to_num(base.alpha_s)))
+                worst_b = np.fmax(worst_b, np.abs(moved.beta_Bps / base.beta_Bps - 1.0))
+        d_alpha += worst_a
+        d_beta += worst_b
+    return d_alpha, d_beta
 
 
 def _newest_steps(steps: list[StepSummary], limit: int) -> list[StepSummary]:

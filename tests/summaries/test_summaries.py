@@ -1,0 +1,170 @@
+"""The summary path against the full analysis (``analyse`` on the raw window) on real recordings.
+
+Sums must agree to relative 1e-9. Link β and α come from quantile sketches: each must lie within twice the
+first-order error bound the summary path states for it (``Figures.fit_error``, propagated from the sketch's
+relative accuracy, DDSketch: Masson, Rim & Lee, 2019); the factor 2 covers the second-order terms.
+Figures that follow from β (scores, ports' capacities, hours at stake) get the bound carried through their
+formulas; verdicts (slow, reason, port) must be identical.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from tests.summaries.conftest import Recorded
+from watchtower.analysis import Analysis, analyse, hockney_lstsq
+from watchtower.analysis.drilldown import worst_ranks
+from watchtower.analysis.efficiency import RELATIVE_JITTER
+from watchtower.analysis.summaries import Figures, SummaryWindow, fold
+
+EXACT = 1e-9
+
+
+def summary_figures(rec: Recorded) -> Figures:
+    """Fold every step, then refold against the window's reference (as collect converges), and build."""
+    first = _window_of(fold(rec.window, rec.cluster), len(rec.window.steps)).figures(rec.cluster)
+    return _window_of(fold(rec.window, rec.cluster, first.reference), len(rec.window.steps)).figures(rec.cluster)
+
+
+def _window_of(summaries: list, capacity: int) -> SummaryWindow:
+    window = SummaryWindow(capacity)
+    for s in summaries:
+        window.push(s)
+    return window
+
+
+@pytest.fixture(scope="module")
+def both(recorded: Recorded) -> tuple[Analysis, Figures]:
+    return analyse(recorded.window, None, recorded.cluster), summary_figures(recorded)
+
+
+def close(a: float, b: float, rel: float = EXACT) -> bool:
+    return (math.isnan(a) and math.isnan(b)) or abs(a - b) <= rel * max(abs(a), abs(b), 1e-300)
+
+
+def test_the_recordings_have_what_the_comparison_needs(recorded: Recorded) -> None:
+    """Several steps, network links, and for the fit more than one step's transfers."""
+    assert len(recorded.window.steps) >= 10
+    assert len(recorded.window.transfers) > 0
+    assert len(set(recorded.window.rank_node.tolist())) >= 4
+
+
+def test_window_efficiency_and_speedup_are_exact(both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    assert mine.steps == full.steps and mine.first_step == full.first_step and mine.last_step == full.last_step
+    for name in ("wall_s", "ideal_s", "load_balance", "communication", "parallel", "serialisation", "transfer"):
+        assert close(getattr(full.efficiency, name), getattr(mine.efficiency, name)), name
+    np.testing.assert_array_equal(full.efficiency.ranks, mine.efficiency.ranks)
+    np.testing.assert_allclose(mine.efficiency.useful_s, full.efficiency.useful_s, rtol=EXACT)
+    for name in ("workers", "achieved", "lost_to_interconnect", "lost_to_imbalance"):
+        assert close(getattr(full.speedup, name), getattr(mine.speedup, name)), name
+    assert close(full.step_s, mine.step_s)
+
+
+def test_layers_and_their_worst_ranks_are_exact(recorded: Recorded, both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst"):
+        np.testing.assert_allclose(getattr(mine.layers, name), getattr(full.layers, name), rtol=EXACT, err_msg=name)
+    np.testing.assert_array_equal(mine.layers.worst_rank, full.layers.worst_rank)
+    np.testing.assert_array_equal(mine.layers.comm_bound, full.layers.comm_bound)
+    drill = worst_ranks(recorded.window)
+    np.testing.assert_allclose(mine.worst.comm_fraction, drill.comm_fraction, rtol=EXACT)
+    np.testing.assert_allclose(mine.worst.exchange_s, drill.exchange_s, rtol=EXACT)
+    np.testing.assert_array_equal(mine.worst.rank, drill.rank)
+
+
+def test_stragglers_are_exact(both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    assert [(s.rank, s.node) for s in mine.stragglers] == [(s.rank, s.node) for s in full.stragglers]
+    for a, b in zip(full.stragglers, mine.stragglers, strict=True):
+        assert close(a.compute_s, b.compute_s) and close(a.score, b.score, 1e-6)
+
+
+def test_link_sums_are_exact(both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    assert [(lk.src_name, lk.dst_name, lk.link_class, lk.local) for lk in mine.links] == \
+        [(lk.src_name, lk.dst_name, lk.link_class, lk.local) for lk in full.links]
+    for a, b in zip(full.links, mine.links, strict=True):
+        assert (a.bytes, a.transfers) == (b.bytes, b.transfers)
+        assert close(a.busy_s, b.busy_s) and close(a.throughput_Bps, b.throughput_Bps)
+        assert (a.utilisation is None) == (b.utilisation is None)
+        assert a.utilisation is None or close(a.utilisation, b.utilisation)
+
+
+def test_link_fit_is_within_the_stated_sketch_bound(both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    assert mine.stale_steps == ()
+    for a, b in zip(full.links, mine.links, strict=True):
+        bound = mine.fit_error[a.src_name, a.dst_name]
+        assert 0 < bound.bandwidth_rel < 0.02  # the bound itself is small: a sketch of accuracy 0.1 %
+        assert abs(b.bandwidth_Bps / a.bandwidth_Bps - 1) <= 2 * bound.bandwidth_rel, (a.src_name, a.dst_name)
+        if math.isnan(a.latency_s):
+            assert math.isnan(b.latency_s)
+        else:
+            assert abs(b.latency_s - a.latency_s) <= 2 * bound.latency_s + 1e-12, (a.src_name, a.dst_name)
+
+
+def _class_bound(full: Analysis, mine: Figures, link_class: str) -> float:
+    return max(mine.fit_error[lk.src_name, lk.dst_name].bandwidth_rel for lk in full.links
+               if lk.link_class == link_class and not lk.local)
+
+
+def test_verdicts_scores_and_hours_follow_the_bound(both: tuple[Analysis, Figures]) -> None:
+    """A modified z-score of log β moves by at most 2D(1 + |z|)/σ when every log β of its class moves by at
+    most D (median by D, MAD by 2D; σ ≥ the 0.02 floor); a saving W(1 − β/β_med) by W(β/β_med)·2(δ + D)."""
+    full, mine = both
+    for a, b in zip(full.links, mine.links, strict=True):
+        assert (a.slow, a.reason, a.port, a.unexplained) == (b.slow, b.reason, b.port, b.unexplained)
+        if a.local:
+            continue
+        d = 2 * _class_bound(full, mine, a.link_class)
+        assert abs(a.score - b.score) <= 2 * 2 * d * (1 + abs(a.score)) / RELATIVE_JITTER, (a.src_name, a.dst_name)
+        if a.saving_per_step_s > 0:
+            peers = [lk.bandwidth_Bps for lk in full.links if lk.link_class == a.link_class and not lk.local]
+            ratio = a.bandwidth_Bps / float(np.median(peers))
+            delta = 2 * (mine.fit_error[a.src_name, a.dst_name].bandwidth_rel + d)
+            assert abs(b.saving_per_step_s / a.saving_per_step_s - 1) <= 2 * ratio * delta / (1 - ratio)
+        else:
+            assert b.saving_per_step_s == 0
+
+
+def test_ports_follow_their_links(both: tuple[Analysis, Figures]) -> None:
+    full, mine = both
+    assert [(p.name, p.links, p.slow, p.reason, p.lower_bound, p.explains, p.shadowed_by) for p in mine.ports] == \
+        [(p.name, p.links, p.slow, p.reason, p.lower_bound, p.explains, p.shadowed_by) for p in full.ports]
+    worst = max(e.bandwidth_rel for e in mine.fit_error.values())
+    for a, b in zip(full.ports, mine.ports, strict=True):
+        assert abs(b.capacity_Bps / a.capacity_Bps - 1) <= 2 * worst
+
+
+def test_the_summaries_plain_fit_is_least_squares(recorded: Recorded) -> None:
+    """Σn, Σt, Σn², Σnt give the textbook least-squares line (numpy.polyfit's, via hockney_lstsq)."""
+    window = _window_of(fold(recorded.window, recorded.cluster), len(recorded.window.steps))
+    sums = window.figures(recorded.cluster).link_sums
+    alpha, beta = sums.plain_fit()
+    tr, node = recorded.window.transfers, dict(zip(recorded.window.ranks.tolist(),
+                                                   recorded.window.rank_node.tolist(), strict=True))
+    code = np.array([(node[s] << 16) | node[d] for s, d in zip(tr.src.tolist(), tr.dst.tolist(), strict=True)])
+    t = tr.transfer_s
+    for i, link in enumerate(sums.link):
+        sel = (code == link) & (tr.nbytes > 0) & (t > 0)
+        a, b = hockney_lstsq(tr.nbytes[sel], t[sel])
+        assert close(alpha[i], a, 1e-6) or abs(alpha[i] - a) < 1e-12
+        assert close(beta[i], b, 1e-6)
+        assert sums.t_min_s[i] == t[sel].min() and sums.t_max_s[i] == t[sel].max()
+
+
+def test_folding_against_another_reference_is_reported_and_shows(recorded: Recorded) -> None:
+    """Steps folded against their own α and busy level are stale for the window; the test above would catch
+    the difference it makes (here: some β beyond its sketch bound), so the check is not vacuous."""
+    full = analyse(recorded.window, None, recorded.cluster)
+    mine = _window_of(fold(recorded.window, recorded.cluster), len(recorded.window.steps)).figures(recorded.cluster)
+    assert mine.stale_steps == mine.fit_steps and mine.fit_steps
+    if recorded.name.startswith("netns"):
+        return  # one message size per link: no α, so the step's own reference is the window's
+    off = [abs(b.bandwidth_Bps / a.bandwidth_Bps - 1) / mine.fit_error[a.src_name, a.dst_name].bandwidth_rel
+           for a, b in zip(full.links, mine.links, strict=True)]
+    assert max(off) > 2
