@@ -173,16 +173,20 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
     known = known[np.argsort(pos[known], kind="stable")]
     bounds = np.searchsorted(pos[known], np.arange(len(window.steps) + 1))
     nominal = np.array([np.nan if (v := cluster.nominal_Bps(name)) is None else v for name in window.nodes])
+    src_node = np.asarray(peer_node, np.int64)[si[known]]
+    dst_node = np.asarray(window.rank_node, np.int64)[di[known]]
+    columns = (src_node, dst_node, di[known], np.asarray(tr.nbytes[known], np.float64), tr.transfer_s[known],
+               (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[known], np.isfinite(tr.wait_s[known]))
     out = []
     for i, step in enumerate(window.steps.tolist()):
-        sel = known[bounds[i]:bounds[i + 1]]
+        sel = slice(bounds[i], bounds[i + 1])
         compute, exchange = window.compute_s[i], window.exchange_s[i]
         out.append(StepSummary(
             step=int(step), layers=window.layers, nodes=window.nodes, ranks=np.asarray(window.ranks),
             rank_node=np.asarray(window.rank_node), compute_ns=_ns(compute), exchange_ns=_ns(exchange),
             step_s=np.asarray(window.step_s[i], np.float64),
             path_s=np.fmax.reduce(compute, axis=0) if len(window.ranks) else np.full(len(window.layers), np.nan),
-            **_fold_transfers(window, sel, np.asarray(peer_node, np.int64)[si[sel]], di[sel], nominal, reference,
+            **_fold_transfers(len(window.nodes), len(window.ranks), *(c[sel] for c in columns), nominal, reference,
                               accuracy), reference=reference))
     return out
 
@@ -198,16 +202,13 @@ def _ns(seconds: np.ndarray) -> np.ndarray:
     return np.rint(np.nan_to_num(np.asarray(seconds, np.float64), nan=0.0) * NS_PER_S).astype(np.int64)
 
 
-def _fold_transfers(window: Window, sel: np.ndarray, src: np.ndarray, di: np.ndarray, nominal: np.ndarray,
+def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray, di: np.ndarray, n: np.ndarray,
+                    t: np.ndarray, lo: np.ndarray, wait_known: np.ndarray, nominal: np.ndarray,
                     reference: Reference | None, accuracy: float) -> dict:
-    tr, n_nodes = window.transfers, len(window.nodes)
-    dst = np.asarray(window.rank_node, np.int64)[di]
+    """One step's transfers (between known ranks; ``di`` the receiver's row) folded."""
     code = (src << NODE_BITS) | dst
     links, link = np.unique(code, return_inverse=True)
     n_links = len(links)
-    n = np.asarray(tr.nbytes[sel], np.float64)
-    t = tr.transfer_s[sel]
-    lo = (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[sel]
     busy_t = np.where(t > 0, t, 0.0)
     eligible = (n > 0) & np.isfinite(t) & (t > 0)  # what fit_hockney keeps
     le, ne, te = link[eligible], n[eligible], t[eligible]
@@ -217,14 +218,13 @@ def _fold_transfers(window: Window, sel: np.ndarray, src: np.ndarray, di: np.nda
     np.fmin.at(t_min, le, te)
     np.fmax.at(t_max, le, te)
     np.fmax.at(fastest, le, ne / te)
-    receiver, where = np.unique(link * max(1, len(window.ranks)) + di, return_inverse=True)
+    receiver, where = np.unique(link * max(1, n_ranks) + di, return_inverse=True)
     worst = np.zeros(n_links)
-    np.fmax.at(worst, receiver // max(1, len(window.ranks)), np.bincount(where, weights=busy_t))
+    np.fmax.at(worst, receiver // max(1, n_ranks), np.bincount(where, weights=busy_t))
     sums = LinkSums(
         links, np.bincount(link, weights=n, minlength=n_links).astype(np.int64), np.bincount(link, minlength=n_links),
         np.bincount(link, weights=busy_t, minlength=n_links), hockney, np.bincount(le, minlength=n_links),
-        t_min, t_max, fastest, np.bincount(link, weights=np.isfinite(tr.wait_s[sel]), minlength=n_links).astype(
-            np.int64), worst)
+        t_min, t_max, fastest, np.bincount(link, weights=wait_known, minlength=n_links).astype(np.int64), worst)
 
     group = (code << SIZE_BITS) | np.where(n > 0, np.floor(np.log2(np.where(n > 0, n, 1.0)) *
                                                             SIZE_BINS_PER_OCTAVE), 0).astype(np.int64)
