@@ -31,7 +31,24 @@ def worst_of_sums(ranks: np.ndarray, compute: np.ndarray, exchange: np.ndarray, 
     total = compute + exchange
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(total > 0, exchange / total, np.nan)
-    order = np.argsort(np.where(np.isnan(fraction), -np.inf, -fraction), axis=0, kind="stable")[:count]
+    order = _first_sorted(np.where(np.isnan(fraction), -np.inf, -fraction), count)
     layers = np.arange(fraction.shape[1])[None, :]
     return WorstRanks(ranks[order], compute[order, layers], exchange[order, layers],
                       fraction[order, layers])
+
+
+def _first_sorted(key: np.ndarray, count: int) -> np.ndarray:
+    """``np.argsort(key, axis=0, kind="stable")[:count]`` without sorting whole columns: only the values up to
+    each column's count-th smallest (ties included) are sorted, so 4096 ranks × 256 layers cost milliseconds."""
+    n_rows, n_cols = key.shape
+    if count >= n_rows or n_cols == 0:
+        return np.argsort(key, axis=0, kind="stable")[:count]
+    kth = np.partition(key, count - 1, axis=0)[count - 1]
+    col, row = np.nonzero((key <= kth).T)  # by column, then row
+    order = np.lexsort((row, key[row, col], col))
+    col, row = col[order], row[order]
+    position = np.arange(len(col)) - np.searchsorted(col, np.arange(n_cols))[col]
+    keep = position < count
+    out = np.empty((count, n_cols), np.int64)
+    out[position[keep], col[keep]] = row[keep]
+    return out

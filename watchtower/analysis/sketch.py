@@ -112,7 +112,7 @@ def _collapse(key: np.ndarray, count: np.ndarray, accuracy: float) -> Sketches:
     """Sort the keys and add the counts of equal ones."""
     if len(key) == 0:
         return Sketches.empty(accuracy)
-    order = np.argsort(key, kind="stable")
+    order = np.argsort(key)
     key, count = key[order], count[order]
     starts = np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
     return Sketches(key[starts], np.add.reduceat(count, starts), accuracy)

@@ -105,23 +105,26 @@ class LinkSums:
     @staticmethod
     def merged(parts: Sequence[LinkSums]) -> LinkSums:
         """One row per link over ``parts`` (steps or shards): sums add, extremes combine."""
-        links = np.unique(np.concatenate([p.link for p in parts]))
-        out = {name: np.zeros(len(links), np.int64) for name in ("bytes", "transfers", "fit_count", "waits_known")}
-        busy, hockney = np.zeros(len(links)), np.zeros((len(links), 5))
-        t_min, t_max = np.full(len(links), np.inf), np.full(len(links), -np.inf)
-        fastest, worst = np.zeros(len(links)), np.zeros(len(links))
-        for p in parts:
-            at = np.searchsorted(links, p.link)
-            for name in out:
-                out[name][at] += getattr(p, name)
-            busy[at] += p.busy_s
-            hockney[at] += p.hockney
-            t_min[at] = np.fmin(t_min[at], p.t_min_s)
-            t_max[at] = np.fmax(t_max[at], p.t_max_s)
-            fastest[at] = np.fmax(fastest[at], p.fastest_Bps)
-            worst[at] = np.fmax(worst[at], p.worst_receiver_s)
-        return LinkSums(links, out["bytes"], out["transfers"], busy, hockney, out["fit_count"], t_min, t_max,
-                        fastest, out["waits_known"], worst)
+        links, at = np.unique(np.concatenate([p.link for p in parts]), return_inverse=True)
+        n = len(links)
+
+        def column(name: str) -> np.ndarray:
+            return np.concatenate([getattr(p, name) for p in parts])
+
+        def total(name: str, dtype: type = np.float64) -> np.ndarray:
+            return np.bincount(at, weights=column(name), minlength=n).astype(dtype)
+
+        def extreme(name: str, ufunc: np.ufunc, start: float) -> np.ndarray:
+            out = np.full(n, start)
+            ufunc.at(out, at, column(name))
+            return out
+
+        hockney = np.zeros((n, 5))
+        np.add.at(hockney, at, np.concatenate([p.hockney for p in parts]))
+        return LinkSums(links, total("bytes", np.int64), total("transfers", np.int64), total("busy_s"), hockney,
+                        total("fit_count", np.int64), extreme("t_min_s", np.fmin, np.inf),
+                        extreme("t_max_s", np.fmax, -np.inf), extreme("fastest_Bps", np.fmax, 0.0),
+                        total("waits_known", np.int64), extreme("worst_receiver_s", np.fmax, 0.0))
 
     def plain_fit(self) -> tuple[np.ndarray, np.ndarray]:
         """Per link, the textbook least-squares line t = α + n/β from the sufficient statistics (α, β):
@@ -142,8 +145,8 @@ class StepSummary:
     nodes: tuple[str, ...]
     ranks: np.ndarray  # int32 [R], ascending
     rank_node: np.ndarray  # int32 [R]
-    compute_ns: np.ndarray  # int64 [R, L], whole nanoseconds (a rank that did not report: 0)
-    exchange_ns: np.ndarray  # int64 [R, L]
+    compute_ns: np.ndarray  # int32 or int64 [R, L], whole nanoseconds (a rank that did not report: 0)
+    exchange_ns: np.ndarray  # the same
     step_s: np.ndarray  # float64 [R], NaN: did not report
     path_s: np.ndarray  # float64 [L], max over ranks of compute (NaN: none reported)
     links: LinkSums
@@ -198,8 +201,11 @@ def _positions(sorted_ids: np.ndarray, ids: np.ndarray) -> tuple[np.ndarray, np.
 
 
 def _ns(seconds: np.ndarray) -> np.ndarray:
-    """Seconds to whole nanoseconds (the wire's unit, so exact for recorded data); NaN to 0."""
-    return np.rint(np.nan_to_num(np.asarray(seconds, np.float64), nan=0.0) * NS_PER_S).astype(np.int64)
+    """Seconds to whole nanoseconds (the wire's unit, so exact for recorded data); NaN to 0. int32 when every
+    cell fits (a layer under 2.1 s: half the memory), else int64; the window's running sums are int64."""
+    ns = np.rint(np.nan_to_num(np.asarray(seconds, np.float64), nan=0.0) * NS_PER_S)
+    small = ns.size == 0 or (ns.min() >= -(2**31) and ns.max() < 2**31)
+    return ns.astype(np.int32 if small else np.int64)
 
 
 def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray, di: np.ndarray, n: np.ndarray,
@@ -331,6 +337,7 @@ class SummaryWindow:
     _compute: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
     _exchange: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
     _reported: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    _node: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))  # each row's node, newest known
 
     def push(self, summary: StepSummary) -> None:
         if self.summaries and summary.step <= self.summaries[-1].step:
@@ -349,7 +356,10 @@ class SummaryWindow:
         if self._compute.shape[0] < shape[0] or self._compute.shape[1] < shape[1]:
             self._compute, self._exchange = _grown(self._compute, shape), _grown(self._exchange, shape)
             self._reported = _grown(self._reported[:, None], (shape[0], 1))[:, 0]
+            self._node = _grown(self._node[:, None], (shape[0], 1))[:, 0]
         rows = np.array([self._rank_row[r] for r in s.ranks.tolist()], np.int64)
+        if sign > 0:
+            self._node[rows] = s.rank_node
         cols = slice(0, len(s.layers))
         self._compute[rows, cols] += sign * s.compute_ns
         self._exchange[rows, cols] += sign * s.exchange_ns
@@ -364,10 +374,7 @@ class SummaryWindow:
         layers, nodes = newest.layers, newest.nodes
         ranks = np.array(sorted(self._rank_row), np.int32)
         rows = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
-        node_of = {}
-        for s in steps:
-            node_of.update(zip(s.ranks.tolist(), s.rank_node.tolist(), strict=True))
-        frame = Window(layers, nodes, ranks, np.array([node_of[r] for r in ranks.tolist()], np.int32),
+        frame = Window(layers, nodes, ranks, self._node[rows],
                        np.array([s.step for s in steps], np.int64), np.empty((0, len(ranks), len(layers))),
                        np.empty((0, len(ranks), len(layers))), np.empty((0, len(ranks))))
         n_layers = len(layers)
@@ -426,9 +433,9 @@ def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, w
             error = error_q if error is None else tuple(np.where(chosen, q, e) for q, e in zip(error_q, error,
                                                                                               strict=True))
     pairs = (sums.link >> NODE_BITS) * n_nodes + (sums.link & ((1 << NODE_BITS) - 1))
-    worst = np.zeros(n_links)
-    for s in steps:
-        worst[np.searchsorted(sums.link, s.links.link)] += s.links.worst_receiver_s
+    # Σ over steps of each step's slowest receiver (merged sums keep only the max over all steps)
+    worst = np.bincount(np.searchsorted(sums.link, np.concatenate([s.links.link for s in steps])),
+                        weights=np.concatenate([s.links.worst_receiver_s for s in steps]), minlength=n_links)
     links = judge_links(pairs, nodes, cluster, fit, sums.bytes.astype(np.float64), sums.busy_s, sums.transfers,
                         wall_s, remaining, lambda shrink: worst * shrink / len(steps), slow_fraction=slow_fraction)
     src, dst = sums.link >> NODE_BITS, sums.link & ((1 << NODE_BITS) - 1)
