@@ -373,7 +373,9 @@ class SummaryWindow:
         newest = steps[-1]
         layers, nodes = newest.layers, newest.nodes
         ranks = np.array(sorted(self._rank_row), np.int32)
-        rows = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
+        rows: np.ndarray | slice = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
+        if np.array_equal(rows, np.arange(len(rows))):
+            rows = slice(0, len(ranks))  # ranks joined in id order, the usual case: views, no copies
         frame = Window(layers, nodes, ranks, self._node[rows],
                        np.array([s.step for s in steps], np.int64), np.empty((0, len(ranks), len(layers))),
                        np.empty((0, len(ranks), len(layers))), np.empty((0, len(ranks))))
