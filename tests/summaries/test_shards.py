@@ -99,3 +99,13 @@ def test_merged_raw_sketches_are_identical_and_give_the_same_latency_reference(s
         np.testing.assert_array_equal(a.bin_bytes.key, b.bin_bytes.key)
         np.testing.assert_allclose(a.bin_bytes.value, b.bin_bytes.value, rtol=1e-12)
     np.testing.assert_allclose(merged_figures.reference.alpha_s, whole.reference.alpha_s, rtol=1e-9, atol=1e-15)
+
+
+def test_merged_step_model_parts_equal_one_fold(split) -> None:
+    """Collective calls add and their callers unite; halo groups unite (the model takes their max)."""
+    _, _, whole, merged = split
+    a, b = whole.model, merged.model
+    for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes"):
+        np.testing.assert_array_equal(getattr(b, name), getattr(a, name), err_msg=name)
+    assert (a.workers, a.n_steps, a.work_s, a.path_s, a.measured_s) == (b.workers, b.n_steps, b.work_s, b.path_s,
+                                                                         b.measured_s)

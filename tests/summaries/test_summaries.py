@@ -10,6 +10,7 @@ formulas; verdicts (slow, reason, port) must be identical.
 from __future__ import annotations
 
 import math
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -168,3 +169,28 @@ def test_folding_against_another_reference_is_reported_and_shows(recorded: Recor
     off = [abs(b.bandwidth_Bps / a.bandwidth_Bps - 1) / mine.fit_error[a.src_name, a.dst_name].bandwidth_rel
            for a, b in zip(full.links, mine.links, strict=True)]
     assert max(off) > 2
+
+
+def test_the_step_model_and_what_ifs_follow_the_fleet_median(both: tuple[Analysis, Figures]) -> None:
+    """The model's collectives and halo groups are exact; its α and β are the fleet's medians of sketched
+    figures (within the links' bounds), and with them each what-if is what the full model projects."""
+    full, mine = both
+    a, b = full.model, mine.model
+    for name in ("workers", "n_steps"):
+        assert getattr(a, name) == getattr(b, name)
+    for name in ("work_s", "path_s", "measured_s"):
+        assert close(getattr(a, name), getattr(b, name)), name
+    for name in ("coll_op", "coll_group", "coll_nbytes"):
+        np.testing.assert_array_equal(getattr(b, name), getattr(a, name))
+    np.testing.assert_allclose(b.coll_per_step, a.coll_per_step, rtol=EXACT)
+    for alpha, beta in ((a.alpha_s, a.beta_Bps), (2 * a.alpha_s, a.beta_Bps / 3)):  # the model's and another fabric
+        assert close(a.comm_s(alpha, beta, a.workers), b.comm_s(alpha, beta, b.workers))
+    # α and β are medians over the links: each moves at most as far as the links' worst bound
+    assert abs(b.beta_Bps / a.beta_Bps - 1) <= 2 * max(e.bandwidth_rel for e in mine.fit_error.values())
+    assert abs(b.alpha_s - a.alpha_s) <= 2 * max(e.latency_s for e in mine.fit_error.values()) + 1e-12
+    # with those, every what-if is the full model's own projection
+    same_fabric = replace(a, alpha_s=b.alpha_s, beta_Bps=b.beta_Bps)
+    for x, y in zip(full.whatif, mine.whatif, strict=True):
+        assert (x.label, x.workers, x.bandwidth_x, x.latency_div) == (y.label, y.workers, y.bandwidth_x, y.latency_div)
+        assert close(y.step_s, same_fabric.step_s(bandwidth_x=y.bandwidth_x, latency_div=y.latency_div,
+                                                  workers=y.workers))

@@ -40,11 +40,13 @@ from watchtower.analysis.links import (
     moving_transfers,
     unshare,
 )
+from watchtower.analysis.models import StepModel, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, port_stats
 from watchtower.analysis.robust import fit_bins, fit_hockney
 from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
 from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
+from watchtower.analysis.summary import SCENARIOS, WhatIf, what_ifs
 from watchtower.analysis.window import Window
 from watchtower.cluster import Cluster
 
@@ -154,6 +156,10 @@ class StepSummary:
     raw_s: Sketches  # per (link, size bin): transfer times as measured (for the raw α)
     unshared_s: Sketches  # per (link, size bin): the same with port sharing taken out (for β)
     busy: Sparse  # per (port << 20 | busy bin + 2^19): seconds the port's flows ran at that aggregate rate
+    halo: np.ndarray  # float64 [H, 3]: distinct (layer, messages, bytes) of a receiving rank's network transfers
+    collectives: np.ndarray  # int64 [K, 3]: distinct (op, group size, bytes) calls
+    collective_calls: np.ndarray  # int64 [K]: calls of each, all ranks together
+    collective_ranks: np.ndarray  # int64 [C, 2]: distinct (row in collectives, rank id) that made such a call
     reference: Reference | None  # what the link fit was folded against (None: this step's own)
 
     @property
@@ -180,9 +186,20 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
     dst_node = np.asarray(window.rank_node, np.int64)[di[known]]
     columns = (src_node, dst_node, di[known], np.asarray(tr.nbytes[known], np.float64), tr.transfer_s[known],
                (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[known], np.isfinite(tr.wait_s[known]))
+    layer = np.asarray(tr.layer, np.int64)[known]
+    col = window.collectives
+    _, c_ok = window.rank_index(col.rank)
+    c_pos, c_step_ok = window.step_index(col.step)
+    c_known = np.flatnonzero(c_ok & c_step_ok)
+    c_known = c_known[np.argsort(c_pos[c_known], kind="stable")]
+    c_bounds = np.searchsorted(c_pos[c_known], np.arange(len(window.steps) + 1))
+    calls = np.column_stack([np.asarray(col.op, np.int64), np.asarray(col.group, np.int64),
+                             np.asarray(col.nbytes, np.int64)])[c_known]
+    callers = np.asarray(col.rank, np.int64)[c_known]
     out = []
     for i, step in enumerate(window.steps.tolist()):
         sel = slice(bounds[i], bounds[i + 1])
+        c_sel = slice(c_bounds[i], c_bounds[i + 1])
         compute, exchange = window.compute_s[i], window.exchange_s[i]
         out.append(StepSummary(
             step=int(step), layers=window.layers, nodes=window.nodes, ranks=np.asarray(window.ranks),
@@ -190,7 +207,9 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
             step_s=np.asarray(window.step_s[i], np.float64),
             path_s=np.fmax.reduce(compute, axis=0) if len(window.ranks) else np.full(len(window.layers), np.nan),
             **_fold_transfers(len(window.nodes), len(window.ranks), *(c[sel] for c in columns), nominal, reference,
-                              accuracy), reference=reference))
+                              accuracy),
+            halo=_halo(src_node[sel], dst_node[sel], layer[sel], columns[2][sel], columns[3][sel], len(window.ranks)),
+            **_collectives(calls[c_sel], callers[c_sel]), reference=reference))
     return out
 
 
@@ -254,6 +273,34 @@ def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray
             "unshared_s": Sketches.of(group[eligible], unshared[eligible], accuracy), "busy": busy}
 
 
+def _halo(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, receiver: np.ndarray, n: np.ndarray,
+          n_ranks: int) -> np.ndarray:
+    """Distinct (layer, messages, bytes) over the receiving ranks' network transfers, as the step model groups
+    them (``models._halo_groups``): the model takes the max over ranks of a cost linear in both."""
+    net = src != dst
+    key, where = np.unique(layer[net] * max(1, n_ranks) + receiver[net], return_inverse=True)
+    rows = np.column_stack([key // max(1, n_ranks), np.bincount(where, minlength=len(key)),
+                            np.bincount(where, weights=n[net], minlength=len(key))]).astype(np.float64)
+    return np.unique(rows, axis=0) if len(rows) else np.zeros((0, 3))
+
+
+def _collectives(calls: np.ndarray, callers: np.ndarray) -> dict[str, np.ndarray]:
+    """Distinct collective calls of the step, how many of each, and which ranks made them."""
+    if len(calls) == 0:
+        return {"collectives": np.zeros((0, 3), np.int64), "collective_calls": np.zeros(0, np.int64),
+                "collective_ranks": np.zeros((0, 2), np.int64)}
+    kinds, which = np.unique(calls, axis=0, return_inverse=True)
+    which = which.reshape(-1)
+    return {"collectives": kinds, "collective_calls": np.bincount(which, minlength=len(kinds)),
+            "collective_ranks": _pairs(which, callers)}
+
+
+def _pairs(row: np.ndarray, rank: np.ndarray) -> np.ndarray:
+    """Distinct (row, rank) pairs, sorted (one int64 key each: ranks are below 2^31)."""
+    key = np.unique((np.asarray(row, np.int64) << 32) | np.asarray(rank, np.int64))
+    return np.column_stack([key >> 32, key & ((1 << 32) - 1)])
+
+
 def _busy_items(busy: Sparse) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(port, busy bin, seconds) of a busy-level histogram."""
     return busy.key >> 20, (busy.key & ((1 << 20) - 1)) - (1 << 19), busy.value
@@ -290,7 +337,32 @@ def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
                    links=LinkSums.merged([p.links for p in parts]),
                    bin_bytes=Sparse.merged([p.bin_bytes for p in parts]),
                    raw_s=merge([p.raw_s for p in parts]), unshared_s=merge([p.unshared_s for p in parts]),
-                   busy=Sparse.merged([p.busy for p in parts]))
+                   busy=Sparse.merged([p.busy for p in parts]),
+                   halo=np.unique(np.concatenate([p.halo for p in parts]), axis=0),
+                   **_merged_collectives(parts))
+
+
+def _merged_collectives(parts: Sequence[StepSummary]) -> dict[str, np.ndarray]:
+    """The collectives of several summaries as one table (calls add; callers unite)."""
+    kinds, which = _unified(parts)
+    calls = np.bincount(which, weights=np.concatenate([p.collective_calls for p in parts]),
+                        minlength=len(kinds)).astype(np.int64)
+    return {"collectives": kinds, "collective_calls": calls, "collective_ranks": _callers(parts, which)}
+
+
+def _unified(parts: Sequence[StepSummary]) -> tuple[np.ndarray, np.ndarray]:
+    """One table of the parts' distinct calls, and each part row's place in it."""
+    stacked = np.concatenate([p.collectives for p in parts])
+    if len(stacked) == 0:
+        return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
+    kinds, which = np.unique(stacked, axis=0, return_inverse=True)
+    return kinds, which.reshape(-1)
+
+
+def _callers(parts: Sequence[StepSummary], which: np.ndarray) -> np.ndarray:
+    offsets = np.cumsum([0] + [len(p.collectives) for p in parts])
+    rows = [which[offsets[i]:offsets[i + 1]][p.collective_ranks[:, 0]] for i, p in enumerate(parts)]
+    return _pairs(np.concatenate(rows), np.concatenate([p.collective_ranks[:, 1] for p in parts]))
 
 
 @dataclass(frozen=True)
@@ -318,6 +390,8 @@ class Figures:
     ports: tuple[PortStats, ...]
     stragglers: tuple[Straggler, ...]
     step_s: float
+    model: StepModel
+    whatif: tuple[WhatIf, ...]
     link_sums: LinkSums  # over the window, rows in ``links``' link codes
     fit_error: dict[tuple[str, str], FitError]  # by (src, dst) node names: how far α and β may be from exact
     reference: Reference  # the window's α and busy levels: fold new steps against it
@@ -392,11 +466,16 @@ class SummaryWindow:
         links, link_sums, reference, fit_steps, fit_error = _links(steps, nodes, cluster, eff.wall_s, remaining,
                                                                    slow_fraction)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+        net = [lk for lk in links if not lk.local]
+        model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
+                         _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
+                         _halo_groups(steps, n_layers))
         return Figures(
             first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
             worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
+            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS),
             link_sums=link_sums, fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps))
@@ -477,6 +556,28 @@ def _fit_error(bins: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], n_li
         d_alpha += worst_a
         d_beta += worst_b
     return d_alpha, d_beta
+
+
+def _signatures(steps: Sequence[StepSummary], n_steps: int) -> tuple[np.ndarray, ...]:
+    """``models._collective_signatures`` from the steps' collective tables."""
+    kinds, which = _unified(steps)
+    calls = np.bincount(which, weights=np.concatenate([s.collective_calls for s in steps]), minlength=len(kinds))
+    ranks = np.bincount(_callers(steps, which)[:, 0], minlength=len(kinds))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return kinds[:, 0], kinds[:, 1], kinds[:, 2], calls / ranks / n_steps
+
+
+def _halo_groups(steps: Sequence[StepSummary], n_layers: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``models._halo_groups`` from the steps' distinct halo rows: (step, layer) cell, messages, bytes."""
+    cells = [i * max(1, n_layers) + s.halo[:, 0].astype(np.int64) for i, s in enumerate(steps)]
+    rows = np.concatenate([s.halo for s in steps])
+    return np.concatenate(cells), rows[:, 1], rows[:, 2]
+
+
+def _nanmedian(values: Sequence[float]) -> float:
+    x = np.asarray(values, np.float64)
+    x = x[np.isfinite(x)]
+    return float(np.median(x)) if len(x) else float("nan")
 
 
 def _newest_steps(steps: list[StepSummary], limit: int) -> list[StepSummary]:

@@ -31,6 +31,7 @@ from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
 RECENT_STEPS = 50  # steps behind the ETA's mean step time; common practice, no source
+SCENARIOS = (("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0))
 
 
 @dataclass(frozen=True)
@@ -74,8 +75,7 @@ class Analysis:
 def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             threshold: float = COMM_BOUND_THRESHOLD, slow_fraction: float = SLOW_FRACTION,
             warmup: int = WARMUP, recent: int = RECENT_STEPS, runs: Sequence[tuple[int, float]] = (),
-            scenarios: Sequence[tuple[str, float, float, float]] = (
-                ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
+            scenarios: Sequence[tuple[str, float, float, float]] = SCENARIOS,
             nic_Bps: np.ndarray | None = None, history: Window | None = None) -> Analysis:
     """Analyse a window (and the run's series, when there is one) against the cluster's configuration.
 
@@ -107,8 +107,7 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in net if lk.slow)
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
                        _nanmedian([lk.bandwidth_Bps for lk in net]))
-    whatif = tuple(_what_if(model, label, bw, lat, max(1, round(eff.workers * rx)))
-                   for label, bw, lat, rx in scenarios) if eff.workers else ()
+    whatif = what_ifs(model, eff.workers, scenarios)
     serial = None
     if len({p for p, _ in runs} | {eff.workers}) >= 2 and eff.workers >= 2 and speedup.achieved > 0:
         serial = serial_fractions([*runs, (eff.workers, speedup.achieved)])
@@ -123,6 +122,13 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
         eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake, model=model, whatif=whatif,
         serial_fraction=serial,
     )
+
+
+def what_ifs(model: StepModel, workers: int,
+             scenarios: Sequence[tuple[str, float, float, float]]) -> tuple[WhatIf, ...]:
+    """The (label, bandwidth ×, latency ÷, ranks ×) scenarios projected with the step model."""
+    return tuple(_what_if(model, label, bw, lat, max(1, round(workers * rx)))
+                 for label, bw, lat, rx in scenarios) if workers else ()
 
 
 def _what_if(model: StepModel, label: str, bandwidth_x: float, latency_div: float, workers: int) -> WhatIf:
