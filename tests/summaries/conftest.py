@@ -7,7 +7,7 @@ from pathlib import Path
 
 import pytest
 
-from watchtower.analysis import Window
+from watchtower.analysis import RunSeries, Window
 from watchtower.cluster import Cluster
 from watchtower.demo import DEMO_RECORDING
 from watchtower.ingest import Ingest
@@ -22,6 +22,7 @@ class Recorded:
     window: Window
     cluster: Cluster
     name: str
+    series: RunSeries
 
 
 def read(path: Path) -> Recorded:
@@ -30,7 +31,7 @@ def read(path: Path) -> Recorded:
     with RecordingReader(path) as reader:
         ingest.feed_all(reader)
         meta = reader.meta
-    return Recorded(ingest.store.window(), cluster_for(meta, None), path.name)
+    return Recorded(ingest.store.window(), cluster_for(meta, None), path.name, ingest.store.series())
 
 
 @pytest.fixture(scope="session", params=["demo", "netns"])

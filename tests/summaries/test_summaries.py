@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from tests.summaries.conftest import Recorded
-from watchtower.analysis import Analysis, analyse, hockney_lstsq
+from watchtower.analysis import Analysis, RunSeries, analyse, hockney_lstsq
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
 from watchtower.analysis.summaries import Figures, SummaryWindow, fold
@@ -24,10 +24,16 @@ from watchtower.analysis.summaries import Figures, SummaryWindow, fold
 EXACT = 1e-9
 
 
-def summary_figures(rec: Recorded) -> Figures:
+def summary_figures(rec: Recorded, series: RunSeries | None = None) -> Figures:
     """Fold every step, then refold against the window's reference (as collect converges), and build."""
     first = _window_of(fold(rec.window, rec.cluster), len(rec.window.steps)).figures(rec.cluster)
-    return _window_of(fold(rec.window, rec.cluster, first.reference), len(rec.window.steps)).figures(rec.cluster)
+    return _window_of(fold(rec.window, rec.cluster, first.reference), len(rec.window.steps)).figures(
+        rec.cluster, series=series)
+
+
+def _series(rec: Recorded) -> RunSeries:
+    """The run's per-step series as the store keeps it."""
+    return rec.series
 
 
 def _window_of(summaries: list, capacity: int) -> SummaryWindow:
@@ -194,3 +200,22 @@ def test_the_step_model_and_what_ifs_follow_the_fleet_median(both: tuple[Analysi
         assert (x.label, x.workers, x.bandwidth_x, x.latency_div) == (y.label, y.workers, y.bandwidth_x, y.latency_div)
         assert close(y.step_s, same_fabric.step_s(bandwidth_x=y.bandwidth_x, latency_div=y.latency_div,
                                                   workers=y.workers))
+
+
+def test_degradation_alerts_are_the_full_analysis_alerts(recorded: Recorded) -> None:
+    """Per step and link, the watched rate (median with sharing taken out) is computed at the fold, from the
+    transfers themselves: the only difference is the α the sharing correction keeps, off by at most the
+    latency bound, which moves a rate n/t by at most that over the shortest transfer time. The alerts are the
+    same, their levels within that; the demo's degrading way out must raise some."""
+    series = _series(recorded)
+    full = analyse(recorded.window, series, recorded.cluster, history=recorded.window)
+    mine = summary_figures(recorded, series=series)
+    t = recorded.window.transfers.transfer_s
+    rel = 2 * max(e.latency_s for e in mine.fit_error.values()) / t[t > 0].min()
+    assert [(a.kind, a.subject, a.step_began, a.step_detected, a.message, a.port) for a in mine.alerts] == \
+        [(a.kind, a.subject, a.step_began, a.step_detected, a.message, a.port) for a in full.alerts]
+    for a, b in zip(full.alerts, mine.alerts, strict=True):
+        assert close(a.baseline, b.baseline, rel) and close(a.recent, b.recent, rel)
+    if recorded.name.startswith("netns"):
+        return
+    assert any(al.kind == "link-throughput" for al in full.alerts)

@@ -28,6 +28,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
+from watchtower.analysis.cusum import Alert, degradation_alerts
 from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
 from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
 from watchtower.analysis.links import (
@@ -42,12 +43,12 @@ from watchtower.analysis.links import (
 )
 from watchtower.analysis.models import StepModel, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
-from watchtower.analysis.ports import PortStats, port_stats
+from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.robust import fit_bins, fit_hockney
 from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
 from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
 from watchtower.analysis.summary import SCENARIOS, WhatIf, what_ifs
-from watchtower.analysis.window import Window
+from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
 NODE_BITS = 16  # a link is (src node << 16) | dst node: up to 65,536 nodes
@@ -156,6 +157,7 @@ class StepSummary:
     raw_s: Sketches  # per (link, size bin): transfer times as measured (for the raw α)
     unshared_s: Sketches  # per (link, size bin): the same with port sharing taken out (for β)
     busy: Sparse  # per (port << 20 | busy bin + 2^19): seconds the port's flows ran at that aggregate rate
+    watch: np.ndarray  # float64 [P, 3] per row of ``links``: median rate with sharing out, its bytes, its time
     halo: np.ndarray  # float64 [H, 3]: distinct (layer, messages, bytes) of a receiving rank's network transfers
     collectives: np.ndarray  # int64 [K, 3]: distinct (op, group size, bytes) calls
     collective_calls: np.ndarray  # int64 [K]: calls of each, all ranks together
@@ -268,9 +270,29 @@ def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray
         level[n_nodes:n_nodes + have] = reference.level_Bps[len(reference.level_Bps) // 2:][:have]
         alpha = _lookup(reference.links, reference.alpha_s, links)
     unshared = unshare(t, moving, alpha[link[moving]], shares(flows, level, nominal))
-    return {"links": sums, "bin_bytes": Sparse.of(group[eligible], ne),
+    return {"links": sums, "watch": _watch(link, n_links, src != dst, n, t, unshared),
+            "bin_bytes": Sparse.of(group[eligible], ne),
             "raw_s": Sketches.of(group[eligible], te, accuracy),
             "unshared_s": Sketches.of(group[eligible], unshared[eligible], accuracy), "busy": busy}
+
+
+def _watch(link: np.ndarray, n_links: int, network: np.ndarray, n: np.ndarray, t: np.ndarray,
+           unshared: np.ndarray) -> np.ndarray:
+    """Per link, what degradation alerts watch in this step (``links.link_rate_series``): the median of its
+    network transfers' rates with sharing taken out, and the bytes and measured time of those transfers."""
+    out = np.full((n_links, 3), np.nan)
+    keep = network & (unshared > 0)
+    if not keep.any():
+        return out
+    rate = n[keep] / unshared[keep]
+    order = np.lexsort((rate, link[keep]))
+    cell, rate = link[keep][order], rate[order]
+    starts = np.flatnonzero(np.r_[True, cell[1:] != cell[:-1]])
+    ends = np.r_[starts[1:], len(cell)]
+    out[cell[starts], 0] = (rate[(starts + ends - 1) // 2] + rate[(starts + ends) // 2]) / 2.0
+    out[cell[starts], 1] = np.bincount(link[keep], weights=n[keep], minlength=n_links)[cell[starts]]
+    out[cell[starts], 2] = np.bincount(link[keep], weights=t[keep], minlength=n_links)[cell[starts]]
+    return out
 
 
 def _halo(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, receiver: np.ndarray, n: np.ndarray,
@@ -334,12 +356,27 @@ def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
     return replace(first, ranks=ranks[order], rank_node=rows("rank_node"), compute_ns=rows("compute_ns"),
                    exchange_ns=rows("exchange_ns"), step_s=rows("step_s"),
                    path_s=np.fmax.reduce(np.stack([p.path_s for p in parts]), axis=0),
-                   links=LinkSums.merged([p.links for p in parts]),
+                   links=LinkSums.merged([p.links for p in parts]), watch=_merged_watch(parts),
                    bin_bytes=Sparse.merged([p.bin_bytes for p in parts]),
                    raw_s=merge([p.raw_s for p in parts]), unshared_s=merge([p.unshared_s for p in parts]),
                    busy=Sparse.merged([p.busy for p in parts]),
                    halo=np.unique(np.concatenate([p.halo for p in parts]), axis=0),
                    **_merged_collectives(parts))
+
+
+def _merged_watch(parts: Sequence[StepSummary]) -> np.ndarray:
+    """The shards' watched rates. A link's transfers are received on its destination node, so by one shard
+    when shards split ranks by node; a link seen by two shards has no exact median here and is refused."""
+    links = np.unique(np.concatenate([p.links.link for p in parts]))
+    out = np.full((len(links), 3), np.nan)
+    for p in parts:
+        at = np.searchsorted(links, p.links.link)
+        has = np.isfinite(p.watch[:, 0])
+        seen = np.isfinite(out[at[has], 0])
+        if seen.any():
+            raise ValueError("a link's transfers are received in one shard: shards split ranks by node")
+        out[at[has]] = p.watch[has]
+    return out
 
 
 def _merged_collectives(parts: Sequence[StepSummary]) -> dict[str, np.ndarray]:
@@ -392,6 +429,7 @@ class Figures:
     step_s: float
     model: StepModel
     whatif: tuple[WhatIf, ...]
+    alerts: tuple[Alert, ...]  # empty unless the run's series was given
     link_sums: LinkSums  # over the window, rows in ``links``' link codes
     fit_error: dict[tuple[str, str], FitError]  # by (src, dst) node names: how far α and β may be from exact
     reference: Reference  # the window's α and busy levels: fold new steps against it
@@ -441,8 +479,10 @@ class SummaryWindow:
 
     def figures(self, cluster: Cluster, *, threshold: float = COMM_BOUND_THRESHOLD,
                 slow_fraction: float = SLOW_FRACTION, nic_Bps: np.ndarray | None = None,
-                worst_count: int = 5) -> Figures:
-        """The window's figures (see ``analysis.summary.analyse`` for each one's definition)."""
+                worst_count: int = 5, series: RunSeries | None = None) -> Figures:
+        """The window's figures (see ``analysis.summary.analyse`` for each one's definition). With the run's
+        ``series``, degradation alerts too, links watched over the window's fitted steps as ``analyse`` does
+        with ``history`` = this window."""
         steps = list(self.summaries)
         newest = steps[-1]
         layers, nodes = newest.layers, newest.nodes
@@ -466,6 +506,8 @@ class SummaryWindow:
         links, link_sums, reference, fit_steps, fit_error = _links(steps, nodes, cluster, eff.wall_s, remaining,
                                                                    slow_fraction)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+        alerts = () if series is None else name_alert_ports(
+            degradation_alerts(series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes))), links)
         net = [lk for lk in links if not lk.local]
         model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
                          _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
@@ -475,10 +517,29 @@ class SummaryWindow:
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
             worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
-            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS),
+            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts,
             link_sums=link_sums, fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps))
+
+
+def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
+    """``links.link_rate_series`` of the window from the fitted steps' watched rates (other steps: none)."""
+    step_s = np.array([np.max(np.nan_to_num(s.step_s, nan=0.0), initial=0.0) for s in steps])
+    fitted = {s.step for s in fit_steps}
+    kept = [(i, s) for i, s in enumerate(steps) if s.step in fitted]
+    codes = np.concatenate([s.links.link[np.isfinite(s.watch[:, 0])] for _, s in kept] + [np.zeros(0, np.int64)])
+    columns = np.unique(codes)
+    grid = np.full((len(steps), len(columns)), np.nan)
+    sums = np.zeros((len(steps), len(columns), 2))
+    for i, s in kept:
+        has = np.isfinite(s.watch[:, 0])
+        at = np.searchsorted(columns, s.links.link[has])
+        grid[i, at] = s.watch[has, 0]
+        sums[i, at] = s.watch[has, 1:]
+    pairs = tuple((int(c >> NODE_BITS), int(c & ((1 << NODE_BITS) - 1))) for c in columns)
+    return RunSeries(np.array([s.step for s in steps], np.int64), step_s, pairs, sums[:, :, 0], sums[:, :, 1],
+                     link_watch_Bps=grid)
 
 
 def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, wall_s: float,
