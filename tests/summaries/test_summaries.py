@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 
 from tests.summaries.conftest import Recorded
-from watchtower.analysis import Analysis, RunSeries, analyse, hockney_lstsq
+from watchtower.analysis import Analysis, RunSeries, analyse, analysis_to_json, hockney_lstsq
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
-from watchtower.analysis.summaries import Figures, SummaryWindow, fold
+from watchtower.analysis.summaries import Figures, SummaryWindow, as_analysis, fold
 
 EXACT = 1e-9
 
@@ -219,3 +219,32 @@ def test_degradation_alerts_are_the_full_analysis_alerts(recorded: Recorded) -> 
     if recorded.name.startswith("netns"):
         return
     assert any(al.kind == "link-throughput" for al in full.alerts)
+
+
+def _agree(full: object, mine: object, path: str, rel: float | None) -> None:
+    """Same JSON shape, same strings, ints, booleans and Nones; floats within ``rel`` (None: any float, the
+    figure's own test above holds it to its bound)."""
+    if isinstance(full, dict):
+        assert isinstance(mine, dict) and full.keys() == mine.keys(), path
+        for key in full:
+            _agree(full[key], mine[key], f"{path}.{key}", rel)
+    elif isinstance(full, list):
+        assert isinstance(mine, list) and len(full) == len(mine), path
+        for i, (a, b) in enumerate(zip(full, mine, strict=True)):
+            _agree(a, b, f"{path}[{i}]", rel)
+    elif isinstance(full, float) and isinstance(mine, float):
+        assert rel is None or close(full, mine, rel), (path, full, mine)
+    else:
+        assert full == mine, (path, full, mine)
+
+
+def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded) -> None:
+    """The whole ``analysis_to_json`` of both paths: every key, verdict, name and count identical; every float
+    outside the link fit's consequences exact, those within their bounds (tested figure by figure above)."""
+    series = _series(recorded)
+    full = analysis_to_json(analyse(recorded.window, series, recorded.cluster, history=recorded.window))
+    mine = analysis_to_json(as_analysis(summary_figures(recorded, series=series), recorded.cluster, series))
+    sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "hours_at_stake")
+    _agree({k: v for k, v in full.items() if k not in sketched}, {k: v for k, v in mine.items() if k not in sketched},
+           "", EXACT)
+    _agree({k: full[k] for k in sketched}, {k: mine[k] for k in sketched}, "", None)

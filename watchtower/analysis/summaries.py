@@ -41,13 +41,13 @@ from watchtower.analysis.links import (
     moving_transfers,
     unshare,
 )
-from watchtower.analysis.models import StepModel, model_of
+from watchtower.analysis.models import StepModel, eta_s, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.robust import fit_bins, fit_hockney
 from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
 from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
-from watchtower.analysis.summary import SCENARIOS, WhatIf, what_ifs
+from watchtower.analysis.summary import RECENT_STEPS, SCENARIOS, Analysis, WhatIf, what_ifs
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
@@ -427,6 +427,7 @@ class Figures:
     ports: tuple[PortStats, ...]
     stragglers: tuple[Straggler, ...]
     step_s: float
+    step_wall_s: np.ndarray  # [S] each step's wall time (the slowest rank's), NaN: nobody reported
     model: StepModel
     whatif: tuple[WhatIf, ...]
     alerts: tuple[Alert, ...]  # empty unless the run's series was given
@@ -517,10 +518,34 @@ class SummaryWindow:
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
             worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
+            step_wall_s=wall,
             model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts,
             link_sums=link_sums, fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps))
+
+
+def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = None,
+                recent: int = RECENT_STEPS) -> Analysis:
+    """The figures as the full analysis's ``Analysis`` (what ``analysis_to_json`` and the snapshot take), with
+    the run-level figures ``analyse`` adds: recent step time, ETA and hours at stake."""
+    last_step = figures.last_step
+    if series is not None and len(series.steps):
+        last_step = max(last_step, int(series.steps[-1]))
+        recent_s = np.asarray(series.step_s[-recent:], np.float64)
+    else:
+        recent_s = figures.step_wall_s[-recent:]
+    recent_s = recent_s[np.isfinite(recent_s)]
+    recent_step_s = float(recent_s.mean()) if len(recent_s) else float("nan")
+    remaining = _remaining(cluster.total_steps, last_step)
+    at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in figures.links
+                                                  if lk.slow and not lk.local)
+    return Analysis(job=cluster.name, first_step=figures.first_step, last_step=figures.last_step,
+                    steps=figures.steps, nodes=figures.nodes, efficiency=figures.efficiency, speedup=figures.speedup,
+                    layers=figures.layers, links=figures.links, ports=figures.ports, stragglers=figures.stragglers,
+                    alerts=figures.alerts, step_s=figures.step_s, recent_step_s=recent_step_s,
+                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake,
+                    model=figures.model, whatif=figures.whatif, serial_fraction=None)
 
 
 def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
