@@ -45,7 +45,7 @@ from watchtower.analysis.models import StepModel, eta_s, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.robust import fit_bins, fit_hockney
-from watchtower.analysis.sharing import busy_bins, level_of_bins, port_flows, shares
+from watchtower.analysis.sharing import PortFlows, busy_bins, level_of_bins, port_flows, shares
 from watchtower.analysis.sketch import RELATIVE_ACCURACY, Sketches, merge
 from watchtower.analysis.summary import RECENT_STEPS, SCENARIOS, Analysis, WhatIf, what_ifs
 from watchtower.analysis.window import RunSeries, Window
@@ -55,6 +55,10 @@ NODE_BITS = 16  # a link is (src node << 16) | dst node: up to 65,536 nodes
 SIZE_BITS = 9  # a (link, size bin) group is link << 9 | bin, bin = ⌊8 log2 bytes⌋ (fit_hockney's bins) < 512
 SIZE_BINS_PER_OCTAVE = 8  # fit_hockney's default
 NS_PER_S = 1e9
+# A transfer shares its ports with flows of the steps either side (ranks drift apart by up to a step), so a
+# step's port loads are worked out with this many steps on each side present. No source: measured on a run
+# between network namespaces, where one step either side made the loads those of the whole window.
+CONTEXT_STEPS = 1
 
 
 @dataclass(frozen=True)
@@ -117,13 +121,15 @@ class LinkSums:
         def total(name: str, dtype: type = np.float64) -> np.ndarray:
             return np.bincount(at, weights=column(name), minlength=n).astype(dtype)
 
-        def extreme(name: str, ufunc: np.ufunc, start: float) -> np.ndarray:
-            out = np.full(n, start)
-            ufunc.at(out, at, column(name))
-            return out
+        order = np.argsort(at, kind="stable")
+        starts = np.searchsorted(at[order], np.arange(n))
 
-        hockney = np.zeros((n, 5))
-        np.add.at(hockney, at, np.concatenate([p.hockney for p in parts]))
+        def extreme(name: str, ufunc: np.ufunc, start: float) -> np.ndarray:
+            return ufunc(ufunc.reduceat(column(name)[order], starts), start) if n else np.zeros(0)
+
+        stacked = np.concatenate([p.hockney for p in parts])
+        hockney = np.column_stack([np.bincount(at, weights=stacked[:, k], minlength=n) for k in range(5)]) \
+            if n else np.zeros((0, 5))
         return LinkSums(links, total("bytes", np.int64), total("transfers", np.int64), total("busy_s"), hockney,
                         total("fit_count", np.int64), extreme("t_min_s", np.fmin, np.inf),
                         extreme("t_max_s", np.fmax, -np.inf), extreme("fastest_Bps", np.fmax, 0.0),
@@ -171,7 +177,8 @@ class StepSummary:
 
 def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
          accuracy: float = RELATIVE_ACCURACY, peers: tuple[np.ndarray, np.ndarray] | None = None) -> list[StepSummary]:
-    """One summary per step of ``window`` (each from that step's records alone).
+    """One summary per step of ``window``: its records, with the flows of ``CONTEXT_STEPS`` steps either side
+    loading the ports its transfers crossed (live, a step is folded once the next one is complete).
 
     ``peers`` (rank ids ascending, their node indices) places the senders of received transfers when the
     window holds only some ranks (a shard collector's); by default the window's own ranks."""
@@ -202,6 +209,8 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
     for i, step in enumerate(window.steps.tolist()):
         sel = slice(bounds[i], bounds[i + 1])
         c_sel = slice(c_bounds[i], c_bounds[i + 1])
+        around = np.r_[bounds[max(0, i - CONTEXT_STEPS)]:bounds[i], bounds[i + 1]:bounds[min(len(bounds) - 1,
+                                                                                            i + 1 + CONTEXT_STEPS)]]
         compute, exchange = window.compute_s[i], window.exchange_s[i]
         out.append(StepSummary(
             step=int(step), layers=window.layers, nodes=window.nodes, ranks=np.asarray(window.ranks),
@@ -209,7 +218,8 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
             step_s=np.asarray(window.step_s[i], np.float64),
             path_s=np.fmax.reduce(compute, axis=0) if len(window.ranks) else np.full(len(window.layers), np.nan),
             **_fold_transfers(len(window.nodes), len(window.ranks), *(c[sel] for c in columns), nominal, reference,
-                              accuracy),
+                              accuracy, tuple(c[around] for c in (src_node, dst_node, columns[5], columns[3],
+                                                                  columns[4]))),
             halo=_halo(src_node[sel], dst_node[sel], layer[sel], columns[2][sel], columns[3][sel], len(window.ranks)),
             **_collectives(calls[c_sel], callers[c_sel]), reference=reference))
     return out
@@ -231,8 +241,11 @@ def _ns(seconds: np.ndarray) -> np.ndarray:
 
 def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray, di: np.ndarray, n: np.ndarray,
                     t: np.ndarray, lo: np.ndarray, wait_known: np.ndarray, nominal: np.ndarray,
-                    reference: Reference | None, accuracy: float) -> dict:
-    """One step's transfers (between known ranks; ``di`` the receiver's row) folded."""
+                    reference: Reference | None, accuracy: float,
+                    context: tuple[np.ndarray, ...] = ()) -> dict:
+    """One step's transfers (between known ranks; ``di`` the receiver's row) folded. ``context`` holds the
+    neighbouring steps' (src, dst, lo, n, t): their flows share ports with this step's, though they are
+    folded with their own step."""
     code = (src << NODE_BITS) | dst
     links, link = np.unique(code, return_inverse=True)
     n_links = len(links)
@@ -256,7 +269,7 @@ def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray
     group = (code << SIZE_BITS) | np.where(n > 0, np.floor(np.log2(np.where(n > 0, n, 1.0)) *
                                                             SIZE_BINS_PER_OCTAVE), 0).astype(np.int64)
     moving = moving_transfers(src, dst, lo, n, t)
-    flows = port_flows(src[moving], dst[moving], lo[moving], lo[moving] + t[moving], n[moving], n_nodes)
+    flows = _own_flows(n_nodes, [(src, dst, lo, n, t), *([context] if context else [])])
     rate, seconds = flows.aggregate, flows.seconds
     ok = (rate > 0) & np.isfinite(rate) & (seconds > 0)
     busy = Sparse.of((flows.port[ok] << 20) | (busy_bins(rate[ok]) + (1 << 19)), seconds[ok])
@@ -274,6 +287,16 @@ def _fold_transfers(n_nodes: int, n_ranks: int, src: np.ndarray, dst: np.ndarray
             "bin_bytes": Sparse.of(group[eligible], ne),
             "raw_s": Sketches.of(group[eligible], te, accuracy),
             "unshared_s": Sketches.of(group[eligible], unshared[eligible], accuracy), "busy": busy}
+
+
+def _own_flows(n_nodes: int, steps: list[tuple[np.ndarray, ...]]) -> PortFlows:
+    """``port_flows`` of the first step's moving transfers, with the others' flows loading the ports too."""
+    parts = [tuple(c[moving_transfers(*cols)] for c in cols) for cols in steps]
+    src, dst, lo, n, t = (np.concatenate(c) for c in zip(*parts, strict=True))
+    flows = port_flows(src, dst, lo, lo + t, n, n_nodes)
+    m, total = len(parts[0][0]), len(src)
+    own = np.r_[0:m, total:total + m]
+    return PortFlows(flows.port[own], flows.nbytes[own], flows.seconds[own], flows.during[own], flows.flow_s[own])
 
 
 def _watch(link: np.ndarray, n_links: int, network: np.ndarray, n: np.ndarray, t: np.ndarray,
@@ -398,8 +421,11 @@ def _unified(parts: Sequence[StepSummary]) -> tuple[np.ndarray, np.ndarray]:
 
 def _callers(parts: Sequence[StepSummary], which: np.ndarray) -> np.ndarray:
     offsets = np.cumsum([0] + [len(p.collectives) for p in parts])
-    rows = [which[offsets[i]:offsets[i + 1]][p.collective_ranks[:, 0]] for i, p in enumerate(parts)]
-    return _pairs(np.concatenate(rows), np.concatenate([p.collective_ranks[:, 1] for p in parts]))
+    keys = [(which[offsets[i]:offsets[i + 1]][p.collective_ranks[:, 0]] << 32) | p.collective_ranks[:, 1]
+            for i, p in enumerate(parts)]
+    same = all(np.array_equal(k, keys[0]) for k in keys[1:])  # the usual case: every step, the same callers
+    key = keys[0] if same else np.unique(np.concatenate(keys))
+    return np.column_stack([key >> 32, key & ((1 << 32) - 1)])
 
 
 @dataclass(frozen=True)
