@@ -248,3 +248,20 @@ def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded) -> None:
     _agree({k: v for k, v in full.items() if k not in sketched}, {k: v for k, v in mine.items() if k not in sketched},
            "", EXACT)
     _agree({k: full[k] for k in sketched}, {k: mine[k] for k in sketched}, "", None)
+
+
+def test_a_window_that_slides_equals_one_built_from_its_steps_alone(recorded: Recorded) -> None:
+    """Steps leaving the window are subtracted from the running sums exactly (integer nanoseconds)."""
+    summaries = fold(recorded.window, recorded.cluster)
+    keep = len(summaries) // 3
+    sliding = _window_of(summaries, keep)
+    fresh = _window_of(summaries[-keep:], keep)
+    assert [s.step for s in sliding.summaries] == [s.step for s in fresh.summaries]
+    a, b = sliding.figures(recorded.cluster), fresh.figures(recorded.cluster)
+    for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank"):
+        np.testing.assert_array_equal(getattr(a.layers, name), getattr(b.layers, name), err_msg=name)
+    np.testing.assert_array_equal(a.efficiency.useful_s, b.efficiency.useful_s)
+    assert (a.efficiency.load_balance, a.stragglers, a.first_step) == (b.efficiency.load_balance, b.stragglers,
+                                                                       b.first_step)
+    assert [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in a.links] == \
+        [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in b.links]
