@@ -22,7 +22,8 @@ import time
 from bench_analysis import best_of, make_window
 
 from watchtower.analysis import analyse
-from watchtower.analysis.summaries import SummaryWindow, fold
+from watchtower.analysis.summaries import fold
+from watchtower.analysis.summary_window import SummaryWindow
 from watchtower.cluster import Cluster
 
 TARGET_S = 0.050

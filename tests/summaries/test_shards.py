@@ -17,7 +17,8 @@ import pytest
 
 from tests.summaries.conftest import Recorded
 from watchtower.analysis import Collectives, Transfers, Window
-from watchtower.analysis.summaries import Figures, StepSummary, SummaryWindow, fold, merge_ranks
+from watchtower.analysis.summaries import StepSummary, fold, merge_ranks
+from watchtower.analysis.summary_window import Figures, SummaryWindow
 
 
 def shard(window: Window, keep_node: np.ndarray) -> Window:

@@ -19,7 +19,8 @@ from tests.summaries.conftest import Recorded
 from watchtower.analysis import Analysis, RunSeries, analyse, analysis_to_json, hockney_lstsq
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
-from watchtower.analysis.summaries import Figures, SummaryWindow, as_analysis, fold
+from watchtower.analysis.summaries import fold
+from watchtower.analysis.summary_window import Figures, SummaryWindow, as_analysis
 
 EXACT = 1e-9
 

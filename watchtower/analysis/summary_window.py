@@ -1,0 +1,336 @@
+"""A window of per-step summaries and its figures: the full analysis's, from folded values.
+
+``SummaryWindow`` keeps the newest steps' summaries (``summaries.fold``) with running exact sums; ``figures``
+runs the full analysis's own functions (``aggregate``, ``efficiency``, ``links.judge_links``,
+``ports.port_stats``, ``models.model_of``, ``cusum``) on merged sums and sketches: O(ranks × layers + links +
+sketch entries), never O(transfers). ``as_analysis`` hands the result on as an ``Analysis``.
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
+from watchtower.analysis.cusum import Alert, degradation_alerts
+from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
+from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
+from watchtower.analysis.links import (
+    MAX_FIT_TRANSFERS,
+    SLOW_FRACTION,
+    WAITS_KNOWN_QUANTILE,
+    WAITS_UNKNOWN_QUANTILE,
+    LinkStats,
+    judge_links,
+)
+from watchtower.analysis.models import StepModel, eta_s, model_of
+from watchtower.analysis.models import remaining_steps as _remaining
+from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
+from watchtower.analysis.robust import fit_bins
+from watchtower.analysis.sharing import level_of_bins
+from watchtower.analysis.sketch import Sketches, merge
+from watchtower.analysis.summaries import (
+    NODE_BITS,
+    NS_PER_S,
+    SIZE_BITS,
+    LinkSums,
+    Reference,
+    Sparse,
+    StepSummary,
+    busy_items,
+    collective_callers,
+    unified_collectives,
+)
+from watchtower.analysis.summary import RECENT_STEPS, SCENARIOS, Analysis, WhatIf, what_ifs
+from watchtower.analysis.window import RunSeries, Window
+from watchtower.cluster import Cluster
+
+
+@dataclass(frozen=True)
+class FitError:
+    """How far a link's α and β from sketches may be from the full analysis's (first order, see ``_fit_error``)
+    when every fitted step was folded against the window's reference."""
+
+    latency_s: float
+    bandwidth_rel: float
+
+
+@dataclass(frozen=True)
+class Figures:
+    """A window's figures from summaries: the full analysis's types, so every reader treats them alike."""
+
+    first_step: int
+    last_step: int
+    steps: int
+    nodes: tuple[str, ...]
+    efficiency: Efficiency
+    speedup: Speedup
+    layers: LayerStats
+    worst: WorstRanks
+    links: tuple[LinkStats, ...]
+    ports: tuple[PortStats, ...]
+    stragglers: tuple[Straggler, ...]
+    step_s: float
+    step_wall_s: np.ndarray  # [S] each step's wall time (the slowest rank's), NaN: nobody reported
+    model: StepModel
+    whatif: tuple[WhatIf, ...]
+    alerts: tuple[Alert, ...]  # empty unless the run's series was given
+    link_sums: LinkSums  # over the window, rows in ``links``' link codes
+    fit_error: dict[tuple[str, str], FitError]  # by (src, dst) node names: how far α and β may be from exact
+    reference: Reference  # the window's α and busy levels: fold new steps against it
+    stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
+    fit_steps: tuple[int, ...]
+
+
+@dataclass
+class SummaryWindow:
+    """The newest ``capacity`` steps' summaries, with running exact sums over them (O(R × L) to read).
+
+    Steps arrive in order; a step already held is replaced. Ranks and layers may grow as they appear."""
+
+    capacity: int
+    summaries: deque[StepSummary] = field(default_factory=deque)
+    _rank_row: dict[int, int] = field(default_factory=dict)
+    _compute: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
+    _exchange: np.ndarray = field(default_factory=lambda: np.zeros((0, 0), np.int64))
+    _reported: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    _node: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))  # each row's node, newest known
+
+    def push(self, summary: StepSummary) -> None:
+        if self.summaries and summary.step <= self.summaries[-1].step:
+            if summary.step != self.summaries[-1].step:
+                raise ValueError("steps arrive in order")
+            self._add(self.summaries.pop(), -1)
+        self.summaries.append(summary)
+        self._add(summary, +1)
+        while len(self.summaries) > self.capacity:
+            self._add(self.summaries.popleft(), -1)
+
+    def _add(self, s: StepSummary, sign: int) -> None:
+        for r in s.ranks.tolist():
+            self._rank_row.setdefault(r, len(self._rank_row))
+        shape = (len(self._rank_row), len(s.layers))
+        if self._compute.shape[0] < shape[0] or self._compute.shape[1] < shape[1]:
+            self._compute, self._exchange = _grown(self._compute, shape), _grown(self._exchange, shape)
+            self._reported = _grown(self._reported[:, None], (shape[0], 1))[:, 0]
+            self._node = _grown(self._node[:, None], (shape[0], 1))[:, 0]
+        rows = np.array([self._rank_row[r] for r in s.ranks.tolist()], np.int64)
+        if sign > 0:
+            self._node[rows] = s.rank_node
+        cols = slice(0, len(s.layers))
+        self._compute[rows, cols] += sign * s.compute_ns
+        self._exchange[rows, cols] += sign * s.exchange_ns
+        self._reported[rows] += sign * np.isfinite(s.step_s)
+
+    def figures(self, cluster: Cluster, *, threshold: float = COMM_BOUND_THRESHOLD,
+                slow_fraction: float = SLOW_FRACTION, nic_Bps: np.ndarray | None = None,
+                worst_count: int = 5, series: RunSeries | None = None) -> Figures:
+        """The window's figures (see ``analysis.summary.analyse`` for each one's definition). With the run's
+        ``series``, degradation alerts too, links watched over the window's fitted steps as ``analyse`` does
+        with ``history`` = this window."""
+        steps = list(self.summaries)
+        newest = steps[-1]
+        layers, nodes = newest.layers, newest.nodes
+        ranks = np.array(sorted(self._rank_row), np.int32)
+        rows: np.ndarray | slice = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
+        if np.array_equal(rows, np.arange(len(rows))):
+            rows = slice(0, len(ranks))  # ranks joined in id order, the usual case: views, no copies
+        frame = Window(layers, nodes, ranks, self._node[rows],
+                       np.array([s.step for s in steps], np.int64), np.empty((0, len(ranks), len(layers))),
+                       np.empty((0, len(ranks), len(layers))), np.empty((0, len(ranks))))
+        n_layers = len(layers)
+        compute = self._compute[rows, :n_layers] / NS_PER_S
+        exchange = self._exchange[rows, :n_layers] / NS_PER_S
+        path = np.stack([_padded(s.path_s, n_layers) for s in steps])
+        wall = np.array([np.fmax.reduce(s.step_s) if len(s.step_s) else np.nan for s in steps])
+        sums = WindowSums(compute, exchange, path, wall, self._reported[rows] > 0)
+        eff = pop_efficiency(frame, sums)
+        n_finite = int(np.count_nonzero(np.isfinite(wall)))
+        last_step = steps[-1].step
+        remaining = _remaining(cluster.total_steps, last_step)
+        links, link_sums, reference, fit_steps, fit_error = _links(steps, nodes, cluster, eff.wall_s, remaining,
+                                                                   slow_fraction)
+        ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+        alerts = () if series is None else name_alert_ports(
+            degradation_alerts(series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes))), links)
+        net = [lk for lk in links if not lk.local]
+        model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
+                         _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
+                         _halo_groups(steps, n_layers))
+        return Figures(
+            first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
+            speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
+            worst=worst_of_sums(ranks, compute, exchange, worst_count), links=links, ports=ports,
+            stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
+            step_wall_s=wall,
+            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts,
+            link_sums=link_sums, fit_error=fit_error, reference=reference,
+            stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
+            fit_steps=tuple(s.step for s in fit_steps))
+
+
+def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = None,
+                recent: int = RECENT_STEPS) -> Analysis:
+    """The figures as the full analysis's ``Analysis`` (what ``analysis_to_json`` and the snapshot take), with
+    the run-level figures ``analyse`` adds: recent step time, ETA and hours at stake."""
+    last_step = figures.last_step
+    if series is not None and len(series.steps):
+        last_step = max(last_step, int(series.steps[-1]))
+        recent_s = np.asarray(series.step_s[-recent:], np.float64)
+    else:
+        recent_s = figures.step_wall_s[-recent:]
+    recent_s = recent_s[np.isfinite(recent_s)]
+    recent_step_s = float(recent_s.mean()) if len(recent_s) else float("nan")
+    remaining = _remaining(cluster.total_steps, last_step)
+    at_stake = None if remaining is None else sum(lk.hours_at_stake or 0.0 for lk in figures.links
+                                                  if lk.slow and not lk.local)
+    return Analysis(job=cluster.name, first_step=figures.first_step, last_step=figures.last_step,
+                    steps=figures.steps, nodes=figures.nodes, efficiency=figures.efficiency, speedup=figures.speedup,
+                    layers=figures.layers, links=figures.links, ports=figures.ports, stragglers=figures.stragglers,
+                    alerts=figures.alerts, step_s=figures.step_s, recent_step_s=recent_step_s,
+                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s), hours_at_stake=at_stake,
+                    model=figures.model, whatif=figures.whatif, serial_fraction=None)
+
+
+def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
+    """``links.link_rate_series`` of the window from the fitted steps' watched rates (other steps: none)."""
+    step_s = np.array([np.max(np.nan_to_num(s.step_s, nan=0.0), initial=0.0) for s in steps])
+    fitted = {s.step for s in fit_steps}
+    kept = [(i, s) for i, s in enumerate(steps) if s.step in fitted]
+    codes = np.concatenate([s.links.link[np.isfinite(s.watch[:, 0])] for _, s in kept] + [np.zeros(0, np.int64)])
+    columns = np.unique(codes)
+    grid = np.full((len(steps), len(columns)), np.nan)
+    sums = np.zeros((len(steps), len(columns), 2))
+    for i, s in kept:
+        has = np.isfinite(s.watch[:, 0])
+        at = np.searchsorted(columns, s.links.link[has])
+        grid[i, at] = s.watch[has, 0]
+        sums[i, at] = s.watch[has, 1:]
+    pairs = tuple((int(c >> NODE_BITS), int(c & ((1 << NODE_BITS) - 1))) for c in columns)
+    return RunSeries(np.array([s.step for s in steps], np.int64), step_s, pairs, sums[:, :, 0], sums[:, :, 1],
+                     link_watch_Bps=grid)
+
+
+def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, wall_s: float,
+           remaining: int | None, slow_fraction: float
+           ) -> tuple[tuple[LinkStats, ...], LinkSums, Reference, list[StepSummary], dict[tuple[str, str], FitError]]:
+    """Link figures as ``links.link_stats`` computes them, from the steps' link sums and sketches."""
+    n_nodes = len(nodes)
+    sums = LinkSums.merged([s.links for s in steps])
+    fit_steps = _newest_steps(steps, MAX_FIT_TRANSFERS)
+    n_links = len(sums.link)
+    raw = merge([s.raw_s for s in fit_steps])
+    unshared = merge([s.unshared_s for s in fit_steps])
+    bin_bytes = Sparse.merged([s.bin_bytes for s in fit_steps])
+    accuracy = raw.accuracy
+    raw_bins = _bins(raw, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE)
+    alpha = np.nan_to_num(fit_bins(*raw_bins, n_links).alpha_s, nan=0.0)
+    alpha_error, _ = _fit_error(raw_bins, n_links, accuracy)
+    busy = Sparse.merged([s.busy for s in fit_steps])
+    port, bins, seconds = busy_items(busy)
+    reference = Reference(sums.link, alpha, level_of_bins(port, bins, seconds, 2 * n_nodes))
+    fit_sums = LinkSums.merged([s.links for s in fit_steps])
+    waits_known = np.zeros(n_links, bool)
+    waits_known[np.searchsorted(sums.link, fit_sums.link)] = fit_sums.waits_known >= 0.5 * fit_sums.transfers
+    fit, error = None, None
+    for quantile, chosen in ((WAITS_UNKNOWN_QUANTILE, ~waits_known), (WAITS_KNOWN_QUANTILE, waits_known)):
+        if chosen.any() or fit is None:
+            bins_q = _bins(unshared, bin_bytes, sums.link, quantile)
+            # A bin's time is off by the sketch's accuracy, plus whatever the raw α's own error moved it by
+            # (the time less α is what sharing scales: at most |Δα|).
+            rel = accuracy + alpha_error[bins_q[0]] / bins_q[2]
+            fit_q, error_q = fit_bins(*bins_q, n_links), _fit_error(bins_q, n_links, rel)
+            fit = fit_q if fit is None else fit.where(chosen, fit_q)
+            error = error_q if error is None else tuple(np.where(chosen, q, e) for q, e in zip(error_q, error,
+                                                                                              strict=True))
+    pairs = (sums.link >> NODE_BITS) * n_nodes + (sums.link & ((1 << NODE_BITS) - 1))
+    # Σ over steps of each step's slowest receiver (merged sums keep only the max over all steps)
+    worst = np.bincount(np.searchsorted(sums.link, np.concatenate([s.links.link for s in steps])),
+                        weights=np.concatenate([s.links.worst_receiver_s for s in steps]), minlength=n_links)
+    links = judge_links(pairs, nodes, cluster, fit, sums.bytes.astype(np.float64), sums.busy_s, sums.transfers,
+                        wall_s, remaining, lambda shrink: worst * shrink / len(steps), slow_fraction=slow_fraction)
+    src, dst = sums.link >> NODE_BITS, sums.link & ((1 << NODE_BITS) - 1)
+    bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
+              for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
+    return links, sums, reference, fit_steps, bounds
+
+
+def _bins(sketch: Sketches, bin_bytes: Sparse, links: np.ndarray,
+          quantile: float) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``fit_bins``' input from sketches: per (link, size bin) its link's row, mean size, time quantile, count."""
+    n_groups = len(bin_bytes.key)
+    numbered = sketch.renumber(bin_bytes.key)
+    counts = numbered.counts(n_groups)
+    return (np.searchsorted(links, bin_bytes.key >> SIZE_BITS), bin_bytes.value / counts,
+            numbered.quantile(quantile, n_groups), counts)
+
+
+def _fit_error(bins: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray], n_links: int,
+               rel: float | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per link, how far α (seconds) and β (relative) may be from the fit through the exact bin times, when
+    each bin's time is off by at most ``rel`` of itself: the first-order bound Σ_bins max(|f(t(1 ± rel)) − f(t)|),
+    each bin moved alone (the bins of every link are moved at once, one fit per bin position)."""
+    link, size, t, counts = bins
+    base = fit_bins(link, size, t, counts, n_links)
+    rel = np.broadcast_to(np.asarray(rel, np.float64), t.shape)
+    starts = np.searchsorted(link, link)  # bins are ordered by link
+    position = np.arange(len(link)) - starts
+    d_alpha, d_beta = np.zeros(n_links), np.zeros(n_links)
+    for k in range(int(position.max()) + 1 if len(position) else 0):
+        worst_a, worst_b = np.zeros(n_links), np.zeros(n_links)
+        for sign in (-1.0, 1.0):
+            moved = fit_bins(link, size, np.where(position == k, t * (1 + sign * rel), t), counts, n_links)
+            with np.errstate(invalid="ignore"):
+                worst_a = np.fmax(worst_a, np.abs(np.nan_to_num(moved.alpha_s) - np.nan_to_num(base.alpha_s)))
+                worst_b = np.fmax(worst_b, np.abs(moved.beta_Bps / base.beta_Bps - 1.0))
+        d_alpha += worst_a
+        d_beta += worst_b
+    return d_alpha, d_beta
+
+
+def _signatures(steps: Sequence[StepSummary], n_steps: int) -> tuple[np.ndarray, ...]:
+    """``models._collective_signatures`` from the steps' collective tables."""
+    kinds, which = unified_collectives(steps)
+    calls = np.bincount(which, weights=np.concatenate([s.collective_calls for s in steps]), minlength=len(kinds))
+    ranks = np.bincount(collective_callers(steps, which)[:, 0], minlength=len(kinds))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return kinds[:, 0], kinds[:, 1], kinds[:, 2], calls / ranks / n_steps
+
+
+def _halo_groups(steps: Sequence[StepSummary], n_layers: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``models._halo_groups`` from the steps' distinct halo rows: (step, layer) cell, messages, bytes."""
+    cells = [i * max(1, n_layers) + s.halo[:, 0].astype(np.int64) for i, s in enumerate(steps)]
+    rows = np.concatenate([s.halo for s in steps])
+    return np.concatenate(cells), rows[:, 1], rows[:, 2]
+
+
+def _nanmedian(values: Sequence[float]) -> float:
+    x = np.asarray(values, np.float64)
+    x = x[np.isfinite(x)]
+    return float(np.median(x)) if len(x) else float("nan")
+
+
+def _newest_steps(steps: list[StepSummary], limit: int) -> list[StepSummary]:
+    """The newest whole steps holding at most ``limit`` transfers (one step at least), as
+    ``links._newest_steps`` picks them (steps after the newest one with transfers do not count)."""
+    counts = np.array([s.transfers for s in steps])
+    last = np.flatnonzero(counts)
+    if not len(last):
+        return steps[-1:]
+    upto = int(last[-1]) + 1
+    from_newest = np.cumsum(counts[:upto][::-1])
+    keep = max(1, int(np.searchsorted(from_newest, limit, side="right")))
+    return steps[max(0, upto - keep):]
+
+
+def _padded(x: np.ndarray, n: int) -> np.ndarray:
+    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), np.nan)])
+
+
+def _grown(array: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
+    grown = np.zeros(shape, dtype=array.dtype)
+    grown[tuple(slice(0, n) for n in array.shape)] = array
+    return grown
