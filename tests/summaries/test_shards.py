@@ -17,7 +17,7 @@ import pytest
 
 from tests.summaries.conftest import Recorded
 from watchtower.analysis import Collectives, Transfers, Window
-from watchtower.analysis.summaries import StepSummary, fold, merge_ranks
+from watchtower.analysis.summaries import LinkSums, StepSummary, fold, merge_ranks
 from watchtower.analysis.summary_window import Figures, SummaryWindow
 
 
@@ -35,15 +35,17 @@ def shard(window: Window, keep_node: np.ndarray) -> Window:
                    collectives=Collectives(*(getattr(col, f)[coll] for f in Collectives.__dataclass_fields__)))
 
 
-def figures(summaries: list[StepSummary], rec: Recorded) -> Figures:
+def figures(summaries: list[StepSummary], rec: Recorded) -> tuple[Figures, LinkSums]:
+    """The window's figures and its link sums."""
     window = SummaryWindow(len(summaries))
     for s in summaries:
         window.push(s)
-    return window.figures(rec.cluster)
+    return window.figures(rec.cluster), window.link_sums()
 
 
 @pytest.fixture(scope="module")
-def split(recorded: Recorded) -> tuple[list[StepSummary], list[StepSummary], Figures, Figures]:
+def split(recorded: Recorded) -> tuple[list[StepSummary], list[StepSummary], tuple[Figures, LinkSums],
+                                       tuple[Figures, LinkSums]]:
     window = recorded.window
     one = fold(window, recorded.cluster)
     n_nodes = len(window.nodes)
@@ -64,7 +66,7 @@ def test_the_shards_split_the_ranks_and_keep_the_steps(recorded: Recorded, split
 
 
 def test_merged_rank_figures_equal_one_fold(split) -> None:
-    _, _, whole, merged = split
+    _, _, (whole, _), (merged, _) = split
     for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank", "comm_bound"):
         np.testing.assert_array_equal(getattr(merged.layers, name), getattr(whole.layers, name), err_msg=name)
     for name in ("rank", "compute_s", "exchange_s", "comm_fraction"):
@@ -79,8 +81,7 @@ def test_merged_rank_figures_equal_one_fold(split) -> None:
 
 
 def test_merged_link_traffic_equals_one_fold(split) -> None:
-    _, _, whole, merged = split
-    a, b = whole.link_sums, merged.link_sums
+    _, _, (whole, a), (merged, b) = split
     np.testing.assert_array_equal(a.link, b.link)
     for name in ("bytes", "transfers", "fit_count", "waits_known", "t_min_s", "t_max_s", "fastest_Bps",
                  "worst_receiver_s"):
@@ -93,7 +94,7 @@ def test_merged_link_traffic_equals_one_fold(split) -> None:
 
 
 def test_merged_raw_sketches_are_identical_and_give_the_same_latency_reference(split) -> None:
-    one, merged, whole, merged_figures = split
+    one, merged, (whole, _), (merged_figures, _) = split
     for a, b in zip(one, merged, strict=True):
         np.testing.assert_array_equal(a.raw_s.key, b.raw_s.key)
         np.testing.assert_array_equal(a.raw_s.count, b.raw_s.count)
@@ -104,7 +105,7 @@ def test_merged_raw_sketches_are_identical_and_give_the_same_latency_reference(s
 
 def test_merged_step_model_parts_equal_one_fold(split) -> None:
     """Collective calls add and their callers unite; halo groups unite (the model takes their max)."""
-    _, _, whole, merged = split
+    _, _, (whole, _), (merged, _) = split
     a, b = whole.model, merged.model
     for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes"):
         np.testing.assert_array_equal(getattr(b, name), getattr(a, name), err_msg=name)

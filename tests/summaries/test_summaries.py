@@ -151,7 +151,7 @@ def test_ports_follow_their_links(both: tuple[Analysis, Figures]) -> None:
 def test_the_summaries_plain_fit_is_least_squares(recorded: Recorded) -> None:
     """Σn, Σt, Σn², Σnt give the textbook least-squares line (numpy.polyfit's, via hockney_lstsq)."""
     window = _window_of(fold(recorded.window, recorded.cluster), len(recorded.window.steps))
-    sums = window.figures(recorded.cluster).link_sums
+    sums = window.link_sums()
     alpha, beta = sums.plain_fit()
     tr, node = recorded.window.transfers, dict(zip(recorded.window.ranks.tolist(),
                                                    recorded.window.rank_node.tolist(), strict=True))
@@ -266,3 +266,15 @@ def test_a_window_that_slides_equals_one_built_from_its_steps_alone(recorded: Re
                                                                        b.first_step)
     assert [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in a.links] == \
         [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in b.links]
+
+
+def test_a_step_pushed_again_replaces_itself(recorded: Recorded) -> None:
+    """A step folded again (its late frames arrived) takes the place of its first fold."""
+    summaries = fold(recorded.window, recorded.cluster)
+    once = _window_of(summaries, len(summaries)).figures(recorded.cluster)
+    twice = _window_of([*summaries[:-1], summaries[-2], summaries[-1], summaries[-1]], len(summaries))
+    with pytest.raises(ValueError, match="in order"):
+        twice.push(summaries[0])
+    again = twice.figures(recorded.cluster)
+    np.testing.assert_array_equal(again.layers.compute_s, once.layers.compute_s)
+    assert [(lk.bytes, lk.bandwidth_Bps) for lk in again.links] == [(lk.bytes, lk.bandwidth_Bps) for lk in once.links]

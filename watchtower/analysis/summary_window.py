@@ -31,7 +31,7 @@ from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
 from watchtower.analysis.robust import fit_bins
 from watchtower.analysis.sharing import level_of_bins
-from watchtower.analysis.sketch import Sketches, merge
+from watchtower.analysis.sketch import Sketches
 from watchtower.analysis.summaries import (
     NODE_BITS,
     NS_PER_S,
@@ -78,7 +78,6 @@ class Figures:
     model: StepModel
     whatif: tuple[WhatIf, ...]
     alerts: tuple[Alert, ...]  # empty unless the run's series was given
-    link_sums: LinkSums  # over the window, rows in ``links``' link codes
     fit_error: dict[tuple[str, str], FitError]  # by (src, dst) node names: how far α and β may be from exact
     reference: Reference  # the window's α and busy levels: fold new steps against it
     stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
@@ -99,15 +98,108 @@ class SummaryWindow:
     _reported: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
     _node: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int32))  # each row's node, newest known
 
+    _links: _Running = field(default_factory=lambda: _Running(len(_LINK_COLUMNS)))  # every step's, by link
+    _fit: deque[StepSummary] = field(default_factory=deque)  # the newest steps the link fit covers
+    _fit_total: int = 0  # their transfers
+    _raw: _Running = field(default_factory=lambda: _Running(0))  # sketch keys, weight = count
+    _unshared: _Running = field(default_factory=lambda: _Running(0))
+    _bin_bytes: _Running = field(default_factory=lambda: _Running(1))
+    _busy: _Running = field(default_factory=lambda: _Running(1))
+    _fit_links: _Running = field(default_factory=lambda: _Running(2))  # transfers, with known waits
+    _pushes: int = 0
+
     def push(self, summary: StepSummary) -> None:
-        if self.summaries and summary.step <= self.summaries[-1].step:
-            if summary.step != self.summaries[-1].step:
-                raise ValueError("steps arrive in order")
+        replaced = bool(self.summaries) and summary.step == self.summaries[-1].step
+        if self.summaries and summary.step < self.summaries[-1].step:
+            raise ValueError("steps arrive in order")
+        if replaced:
             self._add(self.summaries.pop(), -1)
         self.summaries.append(summary)
         self._add(summary, +1)
+        self._enter(summary)
         while len(self.summaries) > self.capacity:
-            self._add(self.summaries.popleft(), -1)
+            old = self.summaries.popleft()
+            self._add(old, -1)
+            self._leave(old)
+        self._pushes += 1
+        if replaced or self._pushes % max(1, self.capacity) == 0:  # float sums: start afresh now and then
+            self._rebuild()
+
+    def _enter(self, s: StepSummary) -> None:
+        """A new step: into the window's link sums and the fit (which then drops its oldest steps while it
+        holds more than ``MAX_FIT_TRANSFERS`` transfers and more than one step, as ``links`` chooses them)."""
+        self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, +1)
+        self._fit.append(s)
+        self._fit_total += s.transfers
+        self._fit_add(s, +1)
+        while self._fit_total > MAX_FIT_TRANSFERS and len(self._fit) > 1:
+            old = self._fit.popleft()
+            self._fit_total -= old.transfers
+            self._fit_add(old, -1)
+
+    def _leave(self, s: StepSummary) -> None:
+        self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, -1)
+        if self._fit and self._fit[0] is s:
+            self._fit.popleft()
+            self._fit_total -= s.transfers
+            self._fit_add(s, -1)
+
+    def _fit_add(self, s: StepSummary, sign: int) -> None:
+        self._raw.add(s.raw_s.key, np.zeros((len(s.raw_s.key), 0)), s.raw_s.count, sign)
+        self._unshared.add(s.unshared_s.key, np.zeros((len(s.unshared_s.key), 0)), s.unshared_s.count, sign)
+        self._bin_bytes.add(s.bin_bytes.key, s.bin_bytes.value[:, None], 1, sign)
+        self._busy.add(s.busy.key, s.busy.value[:, None], 1, sign)
+        self._fit_links.add(s.links.link, np.column_stack([s.links.transfers, s.links.waits_known]), 1, sign)
+
+    def _rebuild(self) -> None:
+        steps = list(self.summaries)
+        self._links, self._fit, self._fit_total = _Running(len(_LINK_COLUMNS)), deque(), 0
+        self._raw, self._unshared, self._bin_bytes = _Running(0), _Running(0), _Running(1)
+        self._busy, self._fit_links = _Running(1), _Running(2)
+        for step in steps:
+            self._enter(step)
+
+    def _link_figures(self, nodes: tuple[str, ...], cluster: Cluster, wall_s: float, remaining: int | None,
+                      slow_fraction: float) -> tuple[tuple[LinkStats, ...], Reference, dict[tuple[str, str], FitError]]:
+        """Link figures as ``links.link_stats`` computes them, from the running link sums and fit sketches."""
+        n_nodes, window = len(nodes), self._links
+        codes, n_links = window.key, len(window.key)
+        accuracy = self.summaries[-1].raw_s.accuracy
+        raw, unshared = self._raw.sketches(accuracy), self._unshared.sketches(accuracy)
+        bin_bytes = self._bin_bytes.sparse()
+        raw_bins = _bins(raw, bin_bytes, codes, WAITS_UNKNOWN_QUANTILE)
+        alpha = np.nan_to_num(fit_bins(*raw_bins, n_links).alpha_s, nan=0.0)
+        alpha_error, _ = _fit_error(raw_bins, n_links, accuracy)
+        port, bins, seconds = busy_items(self._busy.sparse())
+        reference = Reference(codes, alpha, level_of_bins(port, bins, seconds, 2 * n_nodes))
+        fit_links = self._fit_links
+        waits_known = np.zeros(n_links, bool)
+        waits_known[np.searchsorted(codes, fit_links.key)] = fit_links.values[:, 1] >= 0.5 * fit_links.values[:, 0]
+        fit, error = None, None
+        for quantile, chosen in ((WAITS_UNKNOWN_QUANTILE, ~waits_known), (WAITS_KNOWN_QUANTILE, waits_known)):
+            if chosen.any() or fit is None:
+                bins_q = _bins(unshared, bin_bytes, codes, quantile)
+                # A bin's time is off by the sketch's accuracy, plus whatever the raw α's own error moved it by
+                # (the time less α is what sharing scales: at most |Δα|).
+                rel = accuracy + alpha_error[bins_q[0]] / bins_q[2]
+                fit_q, error_q = fit_bins(*bins_q, n_links), _fit_error(bins_q, n_links, rel)
+                fit = fit_q if fit is None else fit.where(chosen, fit_q)
+                error = error_q if error is None else tuple(np.where(chosen, q, e) for q, e in zip(error_q, error,
+                                                                                                  strict=True))
+        pairs = (codes >> NODE_BITS) * n_nodes + (codes & ((1 << NODE_BITS) - 1))
+        column = {name: window.values[:, i] for i, name in enumerate(_LINK_COLUMNS)}
+        worst = column["worst_receiver_s"]  # Σ over steps of each step's slowest receiver
+        links = judge_links(pairs, nodes, cluster, fit, column["bytes"], column["busy_s"],
+                            column["transfers"].astype(np.int64), wall_s, remaining,
+                            lambda shrink: worst * shrink / len(self.summaries), slow_fraction=slow_fraction)
+        src, dst = codes >> NODE_BITS, codes & ((1 << NODE_BITS) - 1)
+        bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
+                  for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
+        return links, reference, bounds
+
+    def link_sums(self) -> LinkSums:
+        """Every column of the window's link sums, extremes included (a merge over the steps: for drill-downs)."""
+        return LinkSums.merged([s.links for s in self.summaries])
 
     def _add(self, s: StepSummary, sign: int) -> None:
         for r in s.ranks.tolist():
@@ -151,8 +243,8 @@ class SummaryWindow:
         n_finite = int(np.count_nonzero(np.isfinite(wall)))
         last_step = steps[-1].step
         remaining = _remaining(cluster.total_steps, last_step)
-        links, link_sums, reference, fit_steps, fit_error = _links(steps, nodes, cluster, eff.wall_s, remaining,
-                                                                   slow_fraction)
+        fit_steps = list(self._fit)
+        links, reference, fit_error = self._link_figures(nodes, cluster, eff.wall_s, remaining, slow_fraction)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
         alerts = () if series is None else name_alert_ports(
             degradation_alerts(series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes))), links)
@@ -167,7 +259,7 @@ class SummaryWindow:
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
             step_wall_s=wall,
             model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts,
-            link_sums=link_sums, fit_error=fit_error, reference=reference,
+            fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps))
 
@@ -212,50 +304,6 @@ def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary],
     pairs = tuple((int(c >> NODE_BITS), int(c & ((1 << NODE_BITS) - 1))) for c in columns)
     return RunSeries(np.array([s.step for s in steps], np.int64), step_s, pairs, sums[:, :, 0], sums[:, :, 1],
                      link_watch_Bps=grid)
-
-
-def _links(steps: list[StepSummary], nodes: tuple[str, ...], cluster: Cluster, wall_s: float,
-           remaining: int | None, slow_fraction: float
-           ) -> tuple[tuple[LinkStats, ...], LinkSums, Reference, list[StepSummary], dict[tuple[str, str], FitError]]:
-    """Link figures as ``links.link_stats`` computes them, from the steps' link sums and sketches."""
-    n_nodes = len(nodes)
-    sums = LinkSums.merged([s.links for s in steps])
-    fit_steps = _newest_steps(steps, MAX_FIT_TRANSFERS)
-    n_links = len(sums.link)
-    raw = merge([s.raw_s for s in fit_steps])
-    unshared = merge([s.unshared_s for s in fit_steps])
-    bin_bytes = Sparse.merged([s.bin_bytes for s in fit_steps])
-    accuracy = raw.accuracy
-    raw_bins = _bins(raw, bin_bytes, sums.link, WAITS_UNKNOWN_QUANTILE)
-    alpha = np.nan_to_num(fit_bins(*raw_bins, n_links).alpha_s, nan=0.0)
-    alpha_error, _ = _fit_error(raw_bins, n_links, accuracy)
-    busy = Sparse.merged([s.busy for s in fit_steps])
-    port, bins, seconds = busy_items(busy)
-    reference = Reference(sums.link, alpha, level_of_bins(port, bins, seconds, 2 * n_nodes))
-    fit_sums = LinkSums.merged([s.links for s in fit_steps])
-    waits_known = np.zeros(n_links, bool)
-    waits_known[np.searchsorted(sums.link, fit_sums.link)] = fit_sums.waits_known >= 0.5 * fit_sums.transfers
-    fit, error = None, None
-    for quantile, chosen in ((WAITS_UNKNOWN_QUANTILE, ~waits_known), (WAITS_KNOWN_QUANTILE, waits_known)):
-        if chosen.any() or fit is None:
-            bins_q = _bins(unshared, bin_bytes, sums.link, quantile)
-            # A bin's time is off by the sketch's accuracy, plus whatever the raw α's own error moved it by
-            # (the time less α is what sharing scales: at most |Δα|).
-            rel = accuracy + alpha_error[bins_q[0]] / bins_q[2]
-            fit_q, error_q = fit_bins(*bins_q, n_links), _fit_error(bins_q, n_links, rel)
-            fit = fit_q if fit is None else fit.where(chosen, fit_q)
-            error = error_q if error is None else tuple(np.where(chosen, q, e) for q, e in zip(error_q, error,
-                                                                                              strict=True))
-    pairs = (sums.link >> NODE_BITS) * n_nodes + (sums.link & ((1 << NODE_BITS) - 1))
-    # Σ over steps of each step's slowest receiver (merged sums keep only the max over all steps)
-    worst = np.bincount(np.searchsorted(sums.link, np.concatenate([s.links.link for s in steps])),
-                        weights=np.concatenate([s.links.worst_receiver_s for s in steps]), minlength=n_links)
-    links = judge_links(pairs, nodes, cluster, fit, sums.bytes.astype(np.float64), sums.busy_s, sums.transfers,
-                        wall_s, remaining, lambda shrink: worst * shrink / len(steps), slow_fraction=slow_fraction)
-    src, dst = sums.link >> NODE_BITS, sums.link & ((1 << NODE_BITS) - 1)
-    bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
-              for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
-    return links, sums, reference, fit_steps, bounds
 
 
 def _bins(sketch: Sketches, bin_bytes: Sparse, links: np.ndarray,
@@ -313,17 +361,42 @@ def _nanmedian(values: Sequence[float]) -> float:
     return float(np.median(x)) if len(x) else float("nan")
 
 
-def _newest_steps(steps: list[StepSummary], limit: int) -> list[StepSummary]:
-    """The newest whole steps holding at most ``limit`` transfers (one step at least), as
-    ``links._newest_steps`` picks them (steps after the newest one with transfers do not count)."""
-    counts = np.array([s.transfers for s in steps])
-    last = np.flatnonzero(counts)
-    if not len(last):
-        return steps[-1:]
-    upto = int(last[-1]) + 1
-    from_newest = np.cumsum(counts[:upto][::-1])
-    keep = max(1, int(np.searchsorted(from_newest, limit, side="right")))
-    return steps[max(0, upto - keep):]
+_LINK_COLUMNS = ("bytes", "transfers", "busy_s", "worst_receiver_s")  # what adds up over a window's steps
+
+
+class _Running:
+    """Sums by sorted int64 key and the weight behind each (steps, or a sketch's counts), updated in place as
+    parts enter and leave: O(entries) per step with no sort, so a snapshot reads merged state, never merges.
+    A key leaves when its weight returns to 0. Each part's keys are unique (they come from one summary)."""
+
+    def __init__(self, width: int) -> None:
+        self.key = np.zeros(0, np.int64)
+        self.values = np.zeros((0, width))
+        self.weight = np.zeros(0, np.int64)
+
+    def add(self, key: np.ndarray, values: np.ndarray, weight: np.ndarray | int, sign: int) -> None:
+        weight = np.broadcast_to(np.asarray(weight, np.int64), key.shape)
+        at = np.searchsorted(self.key, key)
+        hit = at < len(self.key)
+        hit[hit] = self.key[at[hit]] == key[hit]
+        self.values[at[hit]] += sign * values[hit]
+        self.weight[at[hit]] += sign * weight[hit]
+        new = ~hit
+        if new.any():
+            if sign < 0:
+                raise ValueError("only what entered can leave")
+            self.key = np.insert(self.key, at[new], key[new])
+            self.values = np.insert(self.values, at[new], values[new], axis=0)
+            self.weight = np.insert(self.weight, at[new], weight[new])
+        if sign < 0 and (gone := self.weight == 0).any():
+            keep = ~gone
+            self.key, self.values, self.weight = self.key[keep], self.values[keep], self.weight[keep]
+
+    def sparse(self) -> Sparse:
+        return Sparse(self.key, self.values[:, 0])
+
+    def sketches(self, accuracy: float) -> Sketches:
+        return Sketches(self.key, self.weight, accuracy)
 
 
 def _padded(x: np.ndarray, n: int) -> np.ndarray:
