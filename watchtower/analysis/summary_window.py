@@ -204,17 +204,20 @@ class SummaryWindow:
     def _add(self, s: StepSummary, sign: int) -> None:
         for r in s.ranks.tolist():
             self._rank_row.setdefault(r, len(self._rank_row))
-        shape = (len(self._rank_row), len(s.layers))
-        if self._compute.shape[0] < shape[0] or self._compute.shape[1] < shape[1]:
+        n_ranks, n_layers = len(self._rank_row), len(s.layers)
+        if self._compute.shape[0] < n_layers or self._compute.shape[1] < n_ranks:
+            shape = (n_layers, n_ranks)  # layers × ranks: what the figures reduce over ranks is contiguous
             self._compute, self._exchange = _grown(self._compute, shape), _grown(self._exchange, shape)
-            self._reported = _grown(self._reported[:, None], (shape[0], 1))[:, 0]
-            self._node = _grown(self._node[:, None], (shape[0], 1))[:, 0]
-        rows = np.array([self._rank_row[r] for r in s.ranks.tolist()], np.int64)
+            self._reported = _grown(self._reported[:, None], (n_ranks, 1))[:, 0]
+            self._node = _grown(self._node[:, None], (n_ranks, 1))[:, 0]
+        rows = _rows(np.array([self._rank_row[r] for r in s.ranks.tolist()], np.int64))
         if sign > 0:
             self._node[rows] = s.rank_node
-        cols = slice(0, len(s.layers))
-        self._compute[rows, cols] += sign * s.compute_ns
-        self._exchange[rows, cols] += sign * s.exchange_ns
+            self._compute[:n_layers, rows] += s.compute_ns.T
+            self._exchange[:n_layers, rows] += s.exchange_ns.T
+        else:
+            self._compute[:n_layers, rows] -= s.compute_ns.T
+            self._exchange[:n_layers, rows] -= s.exchange_ns.T
         self._reported[rows] += sign * np.isfinite(s.step_s)
 
     def figures(self, cluster: Cluster, *, threshold: float = COMM_BOUND_THRESHOLD,
@@ -227,15 +230,13 @@ class SummaryWindow:
         newest = steps[-1]
         layers, nodes = newest.layers, newest.nodes
         ranks = np.array(sorted(self._rank_row), np.int32)
-        rows: np.ndarray | slice = np.array([self._rank_row[r] for r in ranks.tolist()], np.int64)
-        if np.array_equal(rows, np.arange(len(rows))):
-            rows = slice(0, len(ranks))  # ranks joined in id order, the usual case: views, no copies
+        rows = _rows(np.array([self._rank_row[r] for r in ranks.tolist()], np.int64))
         frame = Window(layers, nodes, ranks, self._node[rows],
                        np.array([s.step for s in steps], np.int64), np.empty((0, len(ranks), len(layers))),
                        np.empty((0, len(ranks), len(layers))), np.empty((0, len(ranks))))
         n_layers = len(layers)
-        compute = self._compute[rows, :n_layers] / NS_PER_S
-        exchange = self._exchange[rows, :n_layers] / NS_PER_S
+        compute = (self._compute[:n_layers, rows] / NS_PER_S).T  # [R, L] views of layer-major arrays
+        exchange = (self._exchange[:n_layers, rows] / NS_PER_S).T
         path = np.stack([_padded(s.path_s, n_layers) for s in steps])
         wall = np.array([np.fmax.reduce(s.step_s) if len(s.step_s) else np.nan for s in steps])
         sums = WindowSums(compute, exchange, path, wall, self._reported[rows] > 0)
@@ -397,6 +398,12 @@ class _Running:
 
     def sketches(self, accuracy: float) -> Sketches:
         return Sketches(self.key, self.weight, accuracy)
+
+
+def _rows(rows: np.ndarray) -> np.ndarray | slice:
+    """Row positions as a slice when they are 0, 1, 2, … (ranks joined in id order, the usual case): views,
+    no copies of the [L, R] sums."""
+    return slice(0, len(rows)) if np.array_equal(rows, np.arange(len(rows))) else rows
 
 
 def _padded(x: np.ndarray, n: int) -> np.ndarray:
