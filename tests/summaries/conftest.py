@@ -8,6 +8,8 @@ from pathlib import Path
 import pytest
 
 from watchtower.analysis import RunSeries, Window
+from watchtower.analysis.summaries import StepSummary, fold
+from watchtower.analysis.summary_window import SummaryWindow
 from watchtower.cluster import Cluster
 from watchtower.demo import DEMO_RECORDING
 from watchtower.ingest import Ingest
@@ -39,3 +41,19 @@ def recorded(request: pytest.FixtureRequest) -> Recorded:
     """The bundled demo recording, and one of a ring job between network namespaces with one node's way out
     shaped by tbf (a real TCP run; see netns_recording.py)."""
     return read(DEMO_RECORDING if request.param == "demo" else NETNS_RECORDING)
+
+
+@dataclass(frozen=True)
+class Folded:
+    own: list[StepSummary]  # each step folded against its own α and busy levels
+    converged: list[StepSummary]  # folded again against the window's reference, as collect converges
+
+
+@pytest.fixture(scope="session")
+def folded(recorded: Recorded) -> Folded:
+    """Each recording's steps folded (once per session: the folds are what the tests share)."""
+    own = fold(recorded.window, recorded.cluster)
+    window = SummaryWindow(len(own))
+    for summary in own:
+        window.push(summary)
+    return Folded(own, fold(recorded.window, recorded.cluster, window.figures(recorded.cluster).reference))

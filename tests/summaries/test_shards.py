@@ -15,7 +15,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from tests.summaries.conftest import Recorded
+from tests.summaries.conftest import Folded, Recorded
 from watchtower.analysis import Collectives, Transfers, Window
 from watchtower.analysis.summaries import LinkSums, StepSummary, fold, merge_ranks
 from watchtower.analysis.summary_window import Figures, SummaryWindow
@@ -44,10 +44,10 @@ def figures(summaries: list[StepSummary], rec: Recorded) -> tuple[Figures, LinkS
 
 
 @pytest.fixture(scope="module")
-def split(recorded: Recorded) -> tuple[list[StepSummary], list[StepSummary], tuple[Figures, LinkSums],
-                                       tuple[Figures, LinkSums]]:
+def split(recorded: Recorded, folded: Folded) -> tuple[list[StepSummary], list[StepSummary],
+                                                       tuple[Figures, LinkSums], tuple[Figures, LinkSums]]:
     window = recorded.window
-    one = fold(window, recorded.cluster)
+    one = folded.own
     n_nodes = len(window.nodes)
     groups = [np.arange(n_nodes) < n_nodes // 2, np.arange(n_nodes) >= n_nodes // 2]  # two racks
     peers = (window.ranks, window.rank_node)  # where each sender sits: the cluster's map, known to every shard

@@ -15,21 +15,18 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from tests.summaries.conftest import Recorded
+from tests.summaries.conftest import Folded, Recorded
 from watchtower.analysis import Analysis, RunSeries, analyse, analysis_to_json, hockney_lstsq
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
-from watchtower.analysis.summaries import fold
 from watchtower.analysis.summary_window import Figures, SummaryWindow, as_analysis
 
 EXACT = 1e-9
 
 
-def summary_figures(rec: Recorded, series: RunSeries | None = None) -> Figures:
-    """Fold every step, then refold against the window's reference (as collect converges), and build."""
-    first = _window_of(fold(rec.window, rec.cluster), len(rec.window.steps)).figures(rec.cluster)
-    return _window_of(fold(rec.window, rec.cluster, first.reference), len(rec.window.steps)).figures(
-        rec.cluster, series=series)
+def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None) -> Figures:
+    """The figures of the steps folded against the window's reference (as collect converges)."""
+    return _window_of(folded.converged, len(rec.window.steps)).figures(rec.cluster, series=series)
 
 
 def _series(rec: Recorded) -> RunSeries:
@@ -45,8 +42,8 @@ def _window_of(summaries: list, capacity: int) -> SummaryWindow:
 
 
 @pytest.fixture(scope="module")
-def both(recorded: Recorded) -> tuple[Analysis, Figures]:
-    return analyse(recorded.window, None, recorded.cluster), summary_figures(recorded)
+def both(recorded: Recorded, folded: Folded) -> tuple[Analysis, Figures]:
+    return analyse(recorded.window, None, recorded.cluster), summary_figures(recorded, folded)
 
 
 def close(a: float, b: float, rel: float = EXACT) -> bool:
@@ -148,9 +145,9 @@ def test_ports_follow_their_links(both: tuple[Analysis, Figures]) -> None:
         assert abs(b.capacity_Bps / a.capacity_Bps - 1) <= 2 * worst
 
 
-def test_the_summaries_plain_fit_is_least_squares(recorded: Recorded) -> None:
+def test_the_summaries_plain_fit_is_least_squares(recorded: Recorded, folded: Folded) -> None:
     """Σn, Σt, Σn², Σnt give the textbook least-squares line (numpy.polyfit's, via hockney_lstsq)."""
-    window = _window_of(fold(recorded.window, recorded.cluster), len(recorded.window.steps))
+    window = _window_of(folded.own, len(recorded.window.steps))
     sums = window.link_sums()
     alpha, beta = sums.plain_fit()
     tr, node = recorded.window.transfers, dict(zip(recorded.window.ranks.tolist(),
@@ -165,11 +162,11 @@ def test_the_summaries_plain_fit_is_least_squares(recorded: Recorded) -> None:
         assert sums.t_min_s[i] == t[sel].min() and sums.t_max_s[i] == t[sel].max()
 
 
-def test_folding_against_another_reference_is_reported_and_shows(recorded: Recorded) -> None:
+def test_folding_against_another_reference_is_reported_and_shows(recorded: Recorded, folded: Folded) -> None:
     """Steps folded against their own α and busy level are stale for the window; the test above would catch
     the difference it makes (here: some β beyond its sketch bound), so the check is not vacuous."""
     full = analyse(recorded.window, None, recorded.cluster)
-    mine = _window_of(fold(recorded.window, recorded.cluster), len(recorded.window.steps)).figures(recorded.cluster)
+    mine = _window_of(folded.own, len(recorded.window.steps)).figures(recorded.cluster)
     assert mine.stale_steps == mine.fit_steps and mine.fit_steps
     if recorded.name.startswith("netns"):
         return  # one message size per link: no α, so the step's own reference is the window's
@@ -203,14 +200,14 @@ def test_the_step_model_and_what_ifs_follow_the_fleet_median(both: tuple[Analysi
                                                   workers=y.workers))
 
 
-def test_degradation_alerts_are_the_full_analysis_alerts(recorded: Recorded) -> None:
+def test_degradation_alerts_are_the_full_analysis_alerts(recorded: Recorded, folded: Folded) -> None:
     """Per step and link, the watched rate (median with sharing taken out) is computed at the fold, from the
     transfers themselves: the only difference is the α the sharing correction keeps, off by at most the
     latency bound, which moves a rate n/t by at most that over the shortest transfer time. The alerts are the
     same, their levels within that; the demo's degrading way out must raise some."""
     series = _series(recorded)
     full = analyse(recorded.window, series, recorded.cluster, history=recorded.window)
-    mine = summary_figures(recorded, series=series)
+    mine = summary_figures(recorded, folded, series=series)
     t = recorded.window.transfers.transfer_s
     rel = 2 * max(e.latency_s for e in mine.fit_error.values()) / t[t > 0].min()
     assert [(a.kind, a.subject, a.step_began, a.step_detected, a.message, a.port) for a in mine.alerts] == \
@@ -239,21 +236,22 @@ def _agree(full: object, mine: object, path: str, rel: float | None) -> None:
         assert full == mine, (path, full, mine)
 
 
-def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded) -> None:
+def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded, folded: Folded) -> None:
     """The whole ``analysis_to_json`` of both paths: every key, verdict, name and count identical; every float
     outside the link fit's consequences exact, those within their bounds (tested figure by figure above)."""
     series = _series(recorded)
     full = analysis_to_json(analyse(recorded.window, series, recorded.cluster, history=recorded.window))
-    mine = analysis_to_json(as_analysis(summary_figures(recorded, series=series), recorded.cluster, series))
+    mine = analysis_to_json(as_analysis(summary_figures(recorded, folded, series=series), recorded.cluster,
+                                                       series))
     sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "hours_at_stake")
     _agree({k: v for k, v in full.items() if k not in sketched}, {k: v for k, v in mine.items() if k not in sketched},
            "", EXACT)
     _agree({k: full[k] for k in sketched}, {k: mine[k] for k in sketched}, "", None)
 
 
-def test_a_window_that_slides_equals_one_built_from_its_steps_alone(recorded: Recorded) -> None:
+def test_a_window_that_slides_equals_one_built_from_its_steps_alone(folded: Folded, recorded: Recorded) -> None:
     """Steps leaving the window are subtracted from the running sums exactly (integer nanoseconds)."""
-    summaries = fold(recorded.window, recorded.cluster)
+    summaries = folded.own
     keep = len(summaries) // 3
     sliding = _window_of(summaries, keep)
     fresh = _window_of(summaries[-keep:], keep)
@@ -268,9 +266,9 @@ def test_a_window_that_slides_equals_one_built_from_its_steps_alone(recorded: Re
         [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in b.links]
 
 
-def test_a_step_pushed_again_replaces_itself(recorded: Recorded) -> None:
+def test_a_step_pushed_again_replaces_itself(folded: Folded, recorded: Recorded) -> None:
     """A step folded again (its late frames arrived) takes the place of its first fold."""
-    summaries = fold(recorded.window, recorded.cluster)
+    summaries = folded.own
     once = _window_of(summaries, len(summaries)).figures(recorded.cluster)
     twice = _window_of([*summaries[:-1], summaries[-2], summaries[-1], summaries[-1]], len(summaries))
     with pytest.raises(ValueError, match="in order"):
