@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,16 +30,24 @@ class WorstRanks:
 
 def worst_ranks(window: Window, count: int = 5) -> WorstRanks:
     """Rank each layer's ranks by exchange / (compute + exchange) summed over the window."""
-    compute = np.nansum(window.compute_s, axis=0)  # [R, L]
-    exchange = np.nansum(window.exchange_s, axis=0)
+    steps = int(np.count_nonzero(np.isfinite(np.asarray(window.step_s, np.float64)).any(axis=1)))
+    return worst_of_sums(window.ranks, np.nansum(window.compute_s, axis=0), np.nansum(window.exchange_s, axis=0),
+                         steps, count, waits_on=lambda order: _waits_on(window, order))
+
+
+def worst_of_sums(ranks: np.ndarray, compute: np.ndarray, exchange: np.ndarray, steps: int, count: int = 5, *,
+                  waits_on: Callable[[np.ndarray], np.ndarray] | None = None) -> WorstRanks:
+    """``worst_ranks`` from each rank's compute and exchange [R, L] summed over ``steps`` steps (per-step
+    summaries keep these sums running). ``waits_on`` maps the picked rows [count, L] to the ranks each waits
+    on; without it (per-step summaries keep no per-peer times) every ``waits_on`` is −1."""
     total = compute + exchange
     with np.errstate(invalid="ignore", divide="ignore"):
         fraction = np.where(total > 0, exchange / total, np.nan)
-    order = np.argsort(np.where(np.isnan(fraction), -np.inf, -fraction), axis=0, kind="stable")[:count]
+    order = _first_sorted(np.where(np.isnan(fraction), -np.inf, -fraction), count)
     layers = np.arange(fraction.shape[1])[None, :]
-    steps = int(np.count_nonzero(np.isfinite(np.asarray(window.step_s, np.float64)).any(axis=1)))
-    return WorstRanks(window.ranks[order], compute[order, layers], exchange[order, layers],
-                      fraction[order, layers], steps, _waits_on(window, order))
+    waits = np.full(order.shape, -1, np.int64) if waits_on is None else waits_on(order)
+    return WorstRanks(ranks[order], compute[order, layers], exchange[order, layers], fraction[order, layers],
+                      steps, waits)
 
 
 def _waits_on(window: Window, order: np.ndarray) -> np.ndarray:
@@ -69,4 +78,21 @@ def _waits_on(window: Window, order: np.ndarray) -> np.ndarray:
             found = longest.get(lay * n_ranks + int(order[row, lay]))
             if found is not None:
                 out[row, lay] = int(window.ranks[found])
+    return out
+
+
+def _first_sorted(key: np.ndarray, count: int) -> np.ndarray:
+    """``np.argsort(key, axis=0, kind="stable")[:count]`` without sorting whole columns: only the values up to
+    each column's count-th smallest (ties included) are sorted, so 4096 ranks × 256 layers cost milliseconds."""
+    n_rows, n_cols = key.shape
+    if count >= n_rows or n_cols == 0:
+        return np.argsort(key, axis=0, kind="stable")[:count]
+    kth = np.partition(key, count - 1, axis=0)[count - 1]
+    col, row = np.nonzero((key <= kth).T)  # by column, then row
+    order = np.lexsort((row, key[row, col], col))
+    col, row = col[order], row[order]
+    position = np.arange(len(col)) - np.searchsorted(col, np.arange(n_cols))[col]
+    keep = position < count
+    out = np.empty((count, n_cols), np.int64)
+    out[position[keep], col[keep]] = row[keep]
     return out

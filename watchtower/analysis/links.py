@@ -7,13 +7,14 @@ network links nor counted in hours at stake.
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
 
 from watchtower.analysis.checks import Checks, fit_checks
 from watchtower.analysis.efficiency import FAR_BELOW_PEERS, OUTLIER_Z, RELATIVE_JITTER
-from watchtower.analysis.robust import fit_hockney, modified_z
+from watchtower.analysis.robust import HockneyFit, fit_hockney, modified_z
 from watchtower.analysis.sharing import bottleneck_share
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
@@ -125,10 +126,34 @@ def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
         busy = np.concatenate([busy, fits.busy_s[new]])
         count = np.concatenate([count, fits.count[new]])
         period = checks.period_s if np.isfinite(checks.period_s) else None
-    n_links = len(pairs)
-    if n_links == 0:
+    if len(pairs) == 0:
         return ()
-    by_check = np.arange(n_links) >= n_job
+
+    def saving_per_step(shrink: np.ndarray) -> np.ndarray:
+        saving = np.zeros(len(pairs))  # checks are not the job's time: no saving
+        if job:
+            saving[:n_job] = _saving_per_step(link, paired.step_index, paired.dst_index, secs, shrink[:n_job],
+                                              len(window.steps), len(window.ranks))
+        return saving
+
+    return judge_links(pairs, names, cluster, HockneyFit(alpha, beta, sizes, clamped), total_bytes, busy, count,
+                       remaining_steps, saving_per_step, n_job=n_job, check_every_s=period,
+                       slow_fraction=slow_fraction, threshold=threshold)
+
+
+def judge_links(pairs: np.ndarray, names: tuple[str, ...], cluster: Cluster, fit: HockneyFit,
+                total_bytes: np.ndarray, busy: np.ndarray, count: np.ndarray, remaining_steps: int | None,
+                saving_per_step: Callable[[np.ndarray], np.ndarray], *, n_job: int | None = None,
+                check_every_s: float | None = None, slow_fraction: float = SLOW_FRACTION,
+                threshold: float = -OUTLIER_Z) -> tuple[LinkStats, ...]:
+    """Each link's figures and verdicts from its fit and sums (from a window's transfers, or from per-step
+    summaries): network links first. The first ``n_job`` links (all, when None) are the job's, the rest pair
+    checks' (every ``check_every_s``). ``saving_per_step`` maps each link's shrink (the share of its transfer
+    time the class's median β would save) to the mean time per step that saves."""
+    n_nodes, n_links = len(names), len(pairs)
+    alpha, beta, sizes, clamped = fit.alpha_s, fit.beta_Bps, fit.sizes, fit.clamped
+    period = check_every_s
+    by_check = np.arange(n_links) >= (n_links if n_job is None else n_job)
     src, dst = pairs // n_nodes, pairs % n_nodes
     local = src == dst
     classes = [cluster.link_class(names[s], names[d]) for s, d in zip(src, dst, strict=True)]
@@ -157,10 +182,7 @@ def link_stats(window: Window, cluster: Cluster, remaining_steps: int | None, *,
     # Every network link's possible saving: a link found slow later (through the port that limits it) needs
     # it too; only slow links' hours are added up as at stake. Checks are not the job's time: no saving.
     shrink = _shrink(beta, median_beta, local)
-    saving = np.zeros(n_links)
-    if job:
-        saving[:n_job] = _saving_per_step(link, paired.step_index, paired.dst_index, secs, shrink[:n_job],
-                                          len(window.steps), len(window.ranks))
+    saving = saving_per_step(shrink)
     with np.errstate(invalid="ignore", divide="ignore"):
         throughput = np.where(busy > 0, total_bytes / busy, np.nan)
     out = []
@@ -271,12 +293,23 @@ def _unshared(window: Window, known: np.ndarray, link: np.ndarray, pairs: np.nda
     n_nodes, n_links = len(window.nodes), len(pairs)
     src, dst = pairs[link] // n_nodes, pairs[link] % n_nodes
     lo = (window.transfers.start_s + np.nan_to_num(window.transfers.wait_s, nan=0.0))[known]
-    moving = (src != dst) & (secs > 0) & (nbytes > 0) & np.isfinite(secs) & np.isfinite(lo)
+    moving = moving_transfers(src, dst, lo, nbytes, secs)
     if not moving.any():
         return secs
     share = bottleneck_share(src[moving], dst[moving], lo[moving], lo[moving] + secs[moving], nbytes[moving],
                              node_nominal)
-    alpha = np.nan_to_num(fit_hockney(link, nbytes, secs, n_links).alpha_s, nan=0.0)[link[moving]]
+    alpha = np.nan_to_num(fit_hockney(link, nbytes, secs, n_links).alpha_s, nan=0.0)
+    return unshare(secs, moving, alpha[link[moving]], share)
+
+
+def moving_transfers(src: np.ndarray, dst: np.ndarray, lo: np.ndarray, nbytes: np.ndarray,
+                     secs: np.ndarray) -> np.ndarray:
+    """The transfers the sharing correction applies to: over the network, moving bytes, with known times."""
+    return (src != dst) & (secs > 0) & (nbytes > 0) & np.isfinite(secs) & np.isfinite(lo)
+
+
+def unshare(secs: np.ndarray, moving: np.ndarray, alpha: np.ndarray, share: np.ndarray) -> np.ndarray:
+    """The ``moving`` transfers' times with the byte-moving part (time − α) scaled by their share."""
     out = secs.copy()
     out[moving] = np.minimum(alpha, secs[moving]) + share * np.maximum(secs[moving] - alpha, 0.0)
     return out

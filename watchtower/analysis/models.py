@@ -173,14 +173,23 @@ def step_model(window: Window, eff: Efficiency, alpha_s: float, beta_Bps: float)
     network cost at all.
     """
     n_steps = max(1, int(np.count_nonzero(np.isfinite(window.step_s).any(axis=1))))
+    return model_of(eff, n_steps, alpha_s, beta_Bps, _collective_signatures(window, n_steps), _halo_groups(window),
+                    _halo_rows(window))
+
+
+def model_of(eff: Efficiency, n_steps: int, alpha_s: float, beta_Bps: float,
+             signatures: tuple[np.ndarray, ...], halo: tuple[np.ndarray, np.ndarray, np.ndarray],
+             rows: tuple[np.ndarray, ...] | None = None) -> StepModel:
+    """``step_model`` from its parts: (op, group, bytes, calls per step) of the collectives, (cell, messages,
+    bytes) of the halo groups, sorted by cell, and the halo split by node pair as ``_halo_rows`` gives it
+    (None: not known, as from per-step summaries: ``links_comm_s`` then models the collectives only)."""
+    if rows is None:
+        empty_i, empty_f = np.zeros(0, np.int64), np.zeros(0)
+        rows = (empty_i, empty_i, empty_i, empty_f, empty_f)
     alpha = 0.0 if not np.isfinite(alpha_s) else float(alpha_s)
     beta = float(beta_Bps) if np.isfinite(beta_Bps) and beta_Bps > 0 else float("inf")
-
-    op, group, nbytes, per_step = _collective_signatures(window, n_steps)
-    cell, msgs, nbytes_halo = _halo_groups(window)
     return StepModel(eff.workers, float(eff.useful_s.sum()) / n_steps, eff.ideal_s / n_steps,
-                     eff.wall_s / n_steps, alpha, beta, op, group, nbytes, per_step, cell, msgs, nbytes_halo,
-                     n_steps, *_halo_rows(window))
+                     eff.wall_s / n_steps, alpha, beta, *signatures, *halo, n_steps, *rows)
 
 
 def _collective_signatures(window: Window, n_steps: int) -> tuple[np.ndarray, ...]:

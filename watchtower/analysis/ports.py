@@ -163,8 +163,11 @@ def port_stats(links: Sequence[LinkStats], nodes: tuple[str, ...], cluster: Clus
                 q = min(acks, key=lambda q: capacity[q])
                 name = f"{nodes[q % n]} {'out' if q < n else 'in'} (acknowledgements)"
         hours = lk.hours_at_stake if reason or lk.hours_at_stake is None else 0.0  # only slow links put hours at stake
-        out_links.append(replace(lk, port=name, slow=bool(reason), reason=reason, hours_at_stake=hours,
-                                 unexplained=lk.slow and not lk.local and name is None))
+        unexplained = lk.slow and not lk.local and name is None
+        same = (name, bool(reason), reason, hours, unexplained) == (lk.port, lk.slow, lk.reason, lk.hours_at_stake,
+                                                                    lk.unexplained)
+        out_links.append(lk if same else replace(lk, port=name, slow=bool(reason), reason=reason,
+                                                 hours_at_stake=hours, unexplained=unexplained))
     return tuple(ports), tuple(out_links)
 
 

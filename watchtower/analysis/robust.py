@@ -105,10 +105,17 @@ def fit_hockney(group: np.ndarray, nbytes: np.ndarray, seconds: np.ndarray, n_gr
     starts = np.flatnonzero(np.r_[True, cell[1:] != cell[:-1]])
     counts = np.diff(np.r_[starts, len(g)])
     pick = starts + np.floor(quantile * (counts - 1)).astype(np.int64)
-    bin_group, bin_t = g[starts], t[pick]
     bin_n = np.add.reduceat(n, starts) / counts  # mean size of the bin's messages
-    weight = counts / bin_t**2
+    return fit_bins(g[starts], bin_n, t[pick], counts, n_groups)
 
+
+def fit_bins(bin_group: np.ndarray, bin_n: np.ndarray, bin_t: np.ndarray, counts: np.ndarray,
+             n_groups: int) -> HockneyFit:
+    """The line of ``fit_hockney`` through size bins given as (group, mean size, time quantile, count),
+    ordered by group: from a window's transfers, or from the per-step summaries' sketches."""
+    alpha = np.full(n_groups, np.nan)
+    beta = np.full(n_groups, np.nan)
+    weight = counts / bin_t**2
     sizes = np.bincount(bin_group, minlength=n_groups)
     a, b = _wls_lines(bin_group, bin_n, bin_t, weight, n_groups)
     fitted = (sizes >= 2) & (b > 0) & np.isfinite(b)

@@ -7,6 +7,8 @@ itself. Pure numpy, one sort for the whole window.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 SATURATED = 0.6  # a port moving ≥ 60 % of its usual busy level is full; common practice, no source
@@ -65,6 +67,12 @@ def _by_port_and_time(port: np.ndarray, t: np.ndarray) -> tuple[np.ndarray, np.n
     return (key & np.uint64((1 << index_bits) - 1)).astype(np.int64), key >> np.uint64(time_bits + index_bits)
 
 
+def busy_bins(rate: np.ndarray, bins_per_octave: int = BINS_PER_OCTAVE) -> np.ndarray:
+    """Each rate's bin on a fixed log grid (bin k holds [2^(k/b), 2^((k+1)/b))): the same grid for every
+    window, so histograms of different steps add up (the per-step summaries keep them that way)."""
+    return np.floor(np.log2(rate) * bins_per_octave).astype(np.int64)
+
+
 def busy_level(port: np.ndarray, rate: np.ndarray, seconds: np.ndarray, n_ports: int, *,
                quantile: float = BUSY_QUANTILE, bins_per_octave: int = BINS_PER_OCTAVE) -> np.ndarray:
     """Per port, the time-weighted ``quantile`` of the aggregate rate its items saw (NaN: no items).
@@ -90,6 +98,25 @@ def busy_level(port: np.ndarray, rate: np.ndarray, seconds: np.ndarray, n_ports:
     return level
 
 
+def level_of_bins(port: np.ndarray, bins: np.ndarray, seconds: np.ndarray, n_ports: int, *,
+                  quantile: float = BUSY_QUANTILE, bins_per_octave: int = BINS_PER_OCTAVE) -> np.ndarray:
+    """``busy_level`` on the fixed grid of ``busy_bins`` from (port, bin, seconds) items, which may be sums of
+    several steps' (per-step summaries). ``busy_level`` anchors its grid at the window's lowest rate instead, so
+    the two agree to within one bin (a factor 2^(1/bins_per_octave))."""
+    level = np.full(n_ports, np.nan)
+    if len(bins) == 0:
+        return level
+    low = int(bins.min())
+    n_bins = int(min(64 * bins_per_octave, int(bins.max()) - low)) + 1
+    b = np.minimum(bins - low, n_bins - 1)
+    hist = np.bincount(port * n_bins + b, weights=seconds, minlength=n_ports * n_bins).reshape(n_ports, n_bins)
+    cum = np.cumsum(hist, axis=1)
+    has = cum[:, -1] > 0
+    first = np.argmax(cum >= quantile * cum[:, -1:], axis=1)
+    level[has] = 2.0 ** ((low + first[has] + 1) / bins_per_octave)  # the bin's upper edge
+    return level
+
+
 def bottleneck_share(src_node: np.ndarray, dst_node: np.ndarray, lo: np.ndarray, hi: np.ndarray,
                      nbytes: np.ndarray, nominal_Bps: np.ndarray) -> np.ndarray:
     """Per network transfer, the share of its bottleneck port's bytes it carried while it ran (1: alone).
@@ -108,17 +135,41 @@ def bottleneck_share(src_node: np.ndarray, dst_node: np.ndarray, lo: np.ndarray,
     so flows that seem to share it do not (clock offsets that fake an overlap; a wrong nominal rate only
     turns the correction off). Ports are indexed ``node`` (out) and ``n_nodes + node`` (in).
     """
-    m = len(lo)
-    n_nodes = len(nominal_Bps)
+    flows = port_flows(src_node, dst_node, lo, hi, nbytes, len(nominal_Bps))
+    return shares(flows, busy_level(flows.port, flows.aggregate, flows.seconds, 2 * len(nominal_Bps)), nominal_Bps)
+
+
+@dataclass(frozen=True)
+class PortFlows:
+    """Each transfer twice, at its way out (first half) and its way in: what its port carried meanwhile."""
+
+    port: np.ndarray  # node (out) or n_nodes + node (in)
+    nbytes: np.ndarray
+    seconds: np.ndarray
+    during: np.ndarray  # bytes the port moved while the transfer ran
+    flow_s: np.ndarray  # flow-seconds the port carried meanwhile
+
+    @property
+    def aggregate(self) -> np.ndarray:
+        return self.during / self.seconds
+
+
+def port_flows(src_node: np.ndarray, dst_node: np.ndarray, lo: np.ndarray, hi: np.ndarray, nbytes: np.ndarray,
+               n_nodes: int) -> PortFlows:
+    """``port_load`` at both ends of every network transfer."""
     port = np.concatenate([src_node, n_nodes + np.asarray(dst_node)]).astype(np.int64)
     lo2, hi2, n2 = np.concatenate([lo, lo]), np.concatenate([hi, hi]), np.concatenate([nbytes, nbytes])
     during, flow_s = port_load(port, lo2, hi2, n2)
-    seconds = hi2 - lo2
-    aggregate = during / seconds
-    level = busy_level(port, aggregate, seconds, 2 * n_nodes)
+    return PortFlows(port, n2, hi2 - lo2, during, flow_s)
+
+
+def shares(flows: PortFlows, level: np.ndarray, nominal_Bps: np.ndarray) -> np.ndarray:
+    """``bottleneck_share`` given each port's busy level (its window's, or a summary's of the same window)."""
+    m = len(flows.port) // 2
+    level = level.copy()
     level[level > OVER_NOMINAL * np.concatenate([nominal_Bps, nominal_Bps])] = np.inf
-    share = n2 / during
-    bottleneck = (aggregate >= SATURATED * level[port]) & (share * flow_s / seconds >= FAIR)
+    share = flows.nbytes / flows.during
+    bottleneck = (flows.aggregate >= SATURATED * level[flows.port]) & (share * flows.flow_s / flows.seconds >= FAIR)
     s_out, s_in = share[:m], share[m:]
     b_out, b_in = bottleneck[:m], bottleneck[m:]
     return np.where(b_out & b_in, np.minimum(s_out, s_in),

@@ -43,6 +43,7 @@ from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
 RECENT_STEPS = 50  # steps behind the ETA's mean step time; common practice, no source
+SCENARIOS = (("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0))
 
 
 @dataclass(frozen=True)
@@ -106,8 +107,7 @@ class Analysis:
 def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
             threshold: float = COMM_BOUND_THRESHOLD, slow_fraction: float = SLOW_FRACTION,
             warmup: int = WARMUP, recent: int = RECENT_STEPS, runs: Sequence[tuple[int, float]] = (),
-            scenarios: Sequence[tuple[str, float, float, float]] = (
-                ("2× bandwidth", 2.0, 1.0, 1.0), ("½ latency", 1.0, 2.0, 1.0), ("2× ranks", 1.0, 1.0, 2.0)),
+            scenarios: Sequence[tuple[str, float, float, float]] = SCENARIOS,
             nic_Bps: np.ndarray | None = None, history: Window | None = None,
             min_effect: float = MIN_EFFECT, min_hours: float = MIN_HOURS,
             false_alerts_per_day: float = FALSE_ALERTS_PER_DAY, checks: Checks | None = None) -> Analysis:
@@ -159,8 +159,7 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     net = [lk for lk in links if not lk.local]
     fixed_step = fixer.step_s([lk for lk in net if lk.slow])
     at_stake = fixer.hours([lk for lk in net if lk.slow])
-    whatif = tuple(_what_if(model, label, bw, lat, max(1, round(eff.workers * rx)))
-                   for label, bw, lat, rx in scenarios) if eff.workers else ()
+    whatif = what_ifs(model, eff.workers, scenarios)
     if eff.workers:
         speedup_fixed = model.work_s / fixed_step if fixed_step > 0 else math.nan
         whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step, speedup_fixed, True),)
@@ -287,6 +286,13 @@ def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[
                                   "whole window; no slow port explains it", once_others_fixed([lk])))
     found.sort(key=lambda f: (-(f.hours_at_stake or 0.0), -(f.hours_once_others_fixed or 0.0)))
     return tuple(found)
+
+
+def what_ifs(model: StepModel, workers: int,
+             scenarios: Sequence[tuple[str, float, float, float]]) -> tuple[WhatIf, ...]:
+    """The (label, bandwidth ×, latency ÷, ranks ×) scenarios projected with the step model."""
+    return tuple(_what_if(model, label, bw, lat, max(1, round(workers * rx)))
+                 for label, bw, lat, rx in scenarios) if workers else ()
 
 
 def _what_if(model: StepModel, label: str, bandwidth_x: float, latency_div: float, workers: int) -> WhatIf:
