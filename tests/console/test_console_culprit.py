@@ -52,3 +52,22 @@ def test_a_healthy_job_says_so() -> None:
     for port in snapshot["ports"]:
         port["slow"] = False
     assert culprit_line(snapshot, 80) == CLEAR
+
+
+def test_a_node_costs_what_fixing_all_its_links_together_buys() -> None:
+    """Each slow link's own stake is what fixing that link alone buys — nothing while the node's other links
+    hold the step — so the strip takes the node's standing finding (all its links fixed together), and for
+    a port named by alerts, their stake; never the links' solo stakes added up."""
+    snapshot = two_culprits()
+    for link in snapshot["links"]:
+        if link["slow"] and link["port"] and link["port"].startswith(NODES[4]):
+            link["hours_at_stake"] = 0.0
+    snapshot["standing"] = [{"kind": "slow-port", "subject": f"{NODES[4]} out and in",
+                             "culprit": f"{NODES[4]} out and in", "links": [], "hours_at_stake": 7.5,
+                             "hours_once_others_fixed": 7.5, "message": ""}]
+    snapshot["alerts"][0]["hours_at_stake"] = 3.25
+    found = {s.node: s for s in suspects(snapshot)}
+    assert found[NODES[4]].hours == 7.5
+    assert found[NODES[2]].hours == 1.3  # no standing finding, no alert names node-c out: its link's stake
+    snapshot["standing"] = []
+    assert {s.node: s for s in suspects(snapshot)}[NODES[4]].hours == 3.25  # the alert naming its way out

@@ -72,11 +72,10 @@ def suspects(snapshot: Snapshot) -> list[Suspect]:
         peers = [p["capacity_Bps"] for p in ports if p["direction"] in directions and not p["slow"]
                  and p["capacity_Bps"] is not None]
         links = [lk for lk in snapshot["links"] if lk.get("port") in labels]
-        hours = [lk["hours_at_stake"] for lk in links if lk["hours_at_stake"] is not None]
         began = [since[label] for label in labels if label in since]
         found.append(Suspect(node, "/".join(directions), min(p["capacity_Bps"] or 0.0 for p in slow),
-                             statistics.median(peers) if peers else None, len(links), sum(hours) if hours else None,
-                             min(began) if began else None))
+                             statistics.median(peers) if peers else None, len(links),
+                             _stake(snapshot, node, labels, links), min(began) if began else None))
     found.sort(key=lambda s: -(s.hours or 0.0))
     named = {f"{s.node} {d}" for s in found for d in s.what.split("/")}
     for label, step in sorted(since.items(), key=lambda item: item[1]):
@@ -85,6 +84,21 @@ def suspects(snapshot: Snapshot) -> list[Suspect]:
             found.append(Suspect(node, direction, since=step))
     found += [Suspect(st["node"], f"rank {st['rank']}") for st in snapshot.get("stragglers", [])]
     return found
+
+
+def _stake(snapshot: Snapshot, node: str, labels: set[str], links: list[dict[str, Any]]) -> float | None:
+    """What the node's slow ports cost: its standing finding's stake (all its links fixed together), else the
+    stake of the alerts that name its ports, else its links' own stakes added up. Each link's own stake is
+    what fixing that link alone buys, which is nothing while the node's other links hold the step."""
+    for finding in snapshot.get("standing", []):
+        if finding.get("culprit") and finding["culprit"].split(" ")[0] == node:
+            return finding["hours_at_stake"]
+    alerted = [a["hours_at_stake"] for a in snapshot.get("alerts", [])
+               if a.get("port") in labels and a.get("hours_at_stake") is not None]
+    if alerted:
+        return max(alerted)
+    hours = [lk["hours_at_stake"] for lk in links if lk["hours_at_stake"] is not None]
+    return sum(hours) if hours else None
 
 
 def culprit_line(snapshot: Snapshot, width: int) -> str:
