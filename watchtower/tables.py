@@ -13,7 +13,7 @@ import textwrap
 from collections.abc import Iterable, Sequence
 from typing import Any
 
-from watchtower.units import count, duration, hours, number, percent, rate, seconds, visible
+from watchtower.units import count, duration, hours, number, percent, rate, seconds, size, visible
 
 MIN_WIDTH = 20
 GAP = "  "
@@ -91,7 +91,7 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     out += ["", *_wrap("links between nodes (beta: Hockney fit t = alpha + n/beta)", width)]
     out += _table(
         ["src", "dst", "bytes", "beta", "alpha", "throughput", "of nominal", "score", "verdict", "hours at stake"],
-        [[visible(lk["src"]), visible(lk["dst"]), count(lk["bytes"]), rate(lk["bandwidth_Bps"]),
+        [[visible(lk["src"]), visible(lk["dst"]), size(lk["bytes"]), rate(lk["bandwidth_Bps"]),
           "clamped" if lk.get("latency_clamped") else seconds(lk["latency_s"]), rate(lk["throughput_Bps"]),
           percent(lk["of_nominal"]), number(lk["score"]),
           "SLOW" + (f" ({lk['reason']})" if lk.get("reason") else "") if lk["slow"] else "",

@@ -434,7 +434,11 @@ def _node(nodes: tuple[str, ...], index: int) -> str:
 
 
 def _level(kind: str, value: float) -> str:
-    return f"{value:.3g} s" if kind == "step-time" else f"{value / 1e6:.4g} MB/s"
+    """A level with the unit that keeps three significant digits, as the console and report show figures."""
+    units = [(1.0, "s"), (1e-3, "ms"), (1e-6, "µs")] if kind == "step-time" else \
+        [(1e12, "TB/s"), (1e9, "GB/s"), (1e6, "MB/s"), (1e3, "kB/s"), (1.0, "B/s")]
+    scale, unit = next(((f, u) for f, u in units if abs(value) >= f), units[-1])
+    return f"{value / scale:.3g} {unit}"
 
 
 def _message(kind: str, subject: str, baseline: float, recent: float, began: int) -> str:
