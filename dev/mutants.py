@@ -53,7 +53,7 @@ AUDIT = [
     Mutant("FAR_BELOW_PEERS 1/3 -> 1/5", "efficiency.py", "FAR_BELOW_PEERS = 1 / 3", "FAR_BELOW_PEERS = 1 / 5"),
     Mutant("ports LIMITS 0.75 -> 0.95", "ports.py", "LIMITS = 0.75", "LIMITS = 0.95"),
     Mutant("ports SHADOW 3 -> 1.5", "ports.py", "SHADOW = 3.0", "SHADOW = 1.5"),
-    Mutant("below-nominal without its size guard", "links.py", "below = (fit.sizes >= 2) & (", "below = ("),
+    Mutant("below-nominal without its size guard", "links.py", "below = (sizes >= 2) & (", "below = ("),
     Mutant("far-below rule on classes of two", "links.py", "(class_size >= 3)", "(class_size >= 2)"),
     Mutant("Hockney weights count/t^2 -> count/t", "robust.py", "weight = counts / bin_t**2",
            "weight = counts / bin_t"),
@@ -61,7 +61,8 @@ AUDIT = [
     Mutant("Hockney size bins per decade", "robust.py", "np.floor(np.log2(n) * bins_per_octave)",
            "np.floor(np.log10(n) * bins_per_octave)"),
     Mutant("CUSUM alarm > h -> >= h", "cusum.py", "alarm < 0 and c > limit", "alarm < 0 and c >= limit"),
-    Mutant("CUSUM warm-up sigma without 1.4826", "cusum.py", "max(1.4826 * float(", "max(1.0 * float("),
+    Mutant("CUSUM warm-up sigma without 1.4826", "cusum.py", "sigma = max(MAD_TO_SIGMA * float(",
+           "sigma = max(1.0 * float("),
 ]
 
 # Every other threshold of the analysis (the CUSUM's are issue 14's), scaled by 0.7 and by 1.3.
