@@ -28,6 +28,7 @@ class HandshakeWatch:
     (the socket itself may belong to another thread, as a proxy's backend does)."""
 
     def __init__(self, sock: zmq.Socket) -> None:
+        self._sock = sock
         self._monitor: zmq.Socket | None = sock.get_monitor_socket(HANDSHAKE_EVENTS)
         self._refused: str | None = None
 
@@ -43,6 +44,8 @@ class HandshakeWatch:
         return self._refused
 
     def close(self) -> None:
+        """Stop watching (before the socket closes); ``refused`` keeps answering with the last outcome."""
         if self._monitor is not None:
+            self._sock.disable_monitor()
             self._monitor.close()
             self._monitor = None

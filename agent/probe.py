@@ -29,7 +29,6 @@ from types import TracebackType
 
 import numpy as np
 import zmq
-from zmq.utils.monitor import recv_monitor_message
 
 from agent import wire
 from agent.clock import Clock, default_clock
@@ -46,7 +45,7 @@ from agent.device import (
     split_exposed,
     union_ns,
 )
-from agent.handshake import HANDSHAKE_EVENTS, refusal_in_words
+from agent.handshake import HandshakeWatch
 from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
@@ -255,8 +254,7 @@ class Probe:
             self._spool = RecordWriter(spool, {"tool": "watchtower-agent spool", "sender": self.sender,
                                                "rank": rank, "world": world, "node": node, "job": job})
         self._socket: zmq.Socket | None = None
-        self._monitor: zmq.Socket | None = None
-        self._refused: str | None = None
+        self._handshake: HandshakeWatch | None = None
         if endpoint is not None:
             ctx = context or zmq.Context.instance()
             sock = ctx.socket(zmq.DEALER)
@@ -265,10 +263,11 @@ class Probe:
                 sock.setsockopt(zmq.LINGER, 1000)
                 if curve_keys is not None:
                     sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = curve_keys
-                self._monitor = sock.get_monitor_socket(HANDSHAKE_EVENTS)
+                self._handshake = HandshakeWatch(sock)
                 sock.connect(endpoint)
             except zmq.ZMQError:  # a bad key or endpoint: leave nothing open that would hang the context
-                self._close_monitor(sock)
+                if self._handshake is not None:
+                    self._handshake.close()
                 sock.close()
                 self._close_spool()
                 raise
@@ -614,14 +613,7 @@ class Probe:
     def refused(self) -> str | None:
         """Why the collector refused this probe's handshake (None while it has not): what a refused agent
         tells its user, since no frame of its ever arrives."""
-        if self._monitor is not None:
-            while self._monitor.poll(0):
-                event = recv_monitor_message(self._monitor)
-                if event["event"] == zmq.EVENT_HANDSHAKE_SUCCEEDED:
-                    self._refused = None
-                else:
-                    self._refused = refusal_in_words(event["event"], event["value"])
-        return self._refused
+        return None if self._handshake is None else self._handshake.refused()
 
     def close(self, drain_s: float = 2.0) -> None:
         """Close the socket and spool; with device timing, first publish what the device finishes within
@@ -629,17 +621,12 @@ class Probe:
         if self._pending:
             self.drain(drain_s)
         if self._socket is not None:
-            self.refused()
-            self._close_monitor(self._socket)
+            if self._handshake is not None:
+                self._handshake.refused()  # the last outcome, kept for after the close
+                self._handshake.close()
             self._socket.close()
             self._socket = None
         self._close_spool()
-
-    def _close_monitor(self, sock: zmq.Socket) -> None:
-        if self._monitor is not None:
-            sock.disable_monitor()
-            self._monitor.close()
-            self._monitor = None
 
     def __enter__(self) -> Probe:
         return self
