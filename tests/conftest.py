@@ -3,10 +3,16 @@
 from __future__ import annotations
 
 import socket
+import threading
 from collections.abc import Iterator
+from pathlib import Path
 
 import pytest
 import zmq
+
+from watchtower.collector import Collector
+from watchtower.ingest import Ingest
+from watchtower.recording import Recorder
 
 
 def free_tcp_port() -> int:
@@ -35,3 +41,17 @@ def zmq_context() -> Iterator[zmq.Context]:
     ctx = zmq.Context()
     yield ctx
     ctx.destroy(linger=0)
+
+
+@pytest.fixture
+def running(endpoint: str, tmp_path: Path, zmq_context: zmq.Context) -> Iterator[tuple[Collector, Path]]:
+    """A collector recording to a file of the test's own, running on a thread until the test ends."""
+    path = tmp_path / "run.wtrace"
+    collector = Collector(endpoint, Ingest(), Recorder(path), context=zmq_context)
+    stop = threading.Event()
+    thread = threading.Thread(target=collector.run, args=(stop,))
+    thread.start()
+    yield collector, path
+    stop.set()
+    thread.join()
+    collector.close()

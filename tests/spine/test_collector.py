@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import threading
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -15,20 +13,7 @@ from agent import Op, Probe, wire
 from agent.clock import ManualClock
 from watchtower.collector import Collector, EndpointError, parse_endpoint, split_envelope
 from watchtower.ingest import Ingest
-from watchtower.recording import Recorder, RecordingReader
-
-
-@pytest.fixture
-def running(endpoint: str, tmp_path: Path, zmq_context: zmq.Context) -> Iterator[tuple[Collector, Path]]:
-    path = tmp_path / "run.wtrace"
-    collector = Collector(endpoint, Ingest(), Recorder(path), context=zmq_context)
-    stop = threading.Event()
-    thread = threading.Thread(target=collector.run, args=(stop,))
-    thread.start()
-    yield collector, path
-    stop.set()
-    thread.join()
-    collector.close()
+from watchtower.recording import RecordingReader
 
 
 def wait_for(condition: object, timeout_s: float = 10.0) -> None:

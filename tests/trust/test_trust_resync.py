@@ -11,8 +11,6 @@ from __future__ import annotations
 import gzip
 import io
 import itertools
-import threading
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -43,22 +41,9 @@ def records_of(blob: bytes) -> tuple[list[tuple[int, list[bytes]]], Tail]:
     return [(t, [bytes(f) for f in frames]) for t, frames in iter_records(stream, tail)], tail
 
 
-@pytest.fixture
-def collecting(endpoint: str, tmp_path: Path, zmq_context: zmq.Context) -> Iterator[tuple[Collector, Path]]:
-    path = tmp_path / "run.wtrace"
-    collector = Collector(endpoint, Ingest(), Recorder(path), context=zmq_context)
-    stop = threading.Event()
-    thread = threading.Thread(target=collector.run, args=(stop,))
-    thread.start()
-    yield collector, path
-    stop.set()
-    thread.join()
-    collector.close()
-
-
 def test_two_40_mib_frames_are_counted_bad_and_the_recording_stays_readable(
-        collecting: tuple[Collector, Path], zmq_context: zmq.Context) -> None:
-    collector, path = collecting
+        running: tuple[Collector, Path], zmq_context: zmq.Context) -> None:
+    collector, path = running
     sender = zmq_context.socket(zmq.DEALER)
     sender.setsockopt(zmq.LINGER, 0)
     sender.connect(collector.bound)
