@@ -11,7 +11,6 @@ from pathlib import Path
 
 import pytest
 import zmq
-from conftest import KeyFolder
 from trust_helpers import AgentProc, kill, recorded, run_steps, settle, start_collector, wait_for
 
 from agent import Probe
@@ -19,6 +18,7 @@ from agent import cli as agent_cli
 from agent.daemon import NodeDaemon
 from agent.keys import curve_keys
 from tests.conftest import free_tcp_port
+from tests.trust.conftest import KeyFolder
 from watchtower import cli
 from watchtower.collector import Collector
 from watchtower.ingest import Ingest

@@ -13,13 +13,13 @@ from pathlib import Path
 
 import pytest
 import zmq
-from conftest import KeyFolder
 from trust_helpers import kill, run_steps, start_collector, wait_for
 
 from agent import Probe
 from agent import cli as agent_cli
 from agent.keys import curve_keys
 from tests.conftest import free_tcp_port
+from tests.trust.conftest import KeyFolder
 from watchtower import cli
 from watchtower.console import ConsoleApp, StaticFeed
 from watchtower.console.header import JobHeader
