@@ -90,14 +90,16 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     )
     out += ["", *_wrap("links between nodes (beta: Hockney fit t = alpha + n/beta)", width)]
     out += _table(
-        ["src", "dst", "bytes", "beta", "alpha", "throughput", "of nominal", "score", "verdict", "hours at stake"],
-        [[visible(lk["src"]), visible(lk["dst"]), size(lk["bytes"]), rate(lk["bandwidth_Bps"]),
+        ["src", "dst", "measured by", "bytes", "beta", "alpha", "throughput", "of nominal", "score", "verdict",
+         "hours at stake"],
+        [[visible(lk["src"]), visible(lk["dst"]), "pair check" if lk.get("measured_by") == "check" else "",
+          size(lk["bytes"]), rate(lk["bandwidth_Bps"]),
           "clamped" if lk.get("latency_clamped") else seconds(lk["latency_s"]), rate(lk["throughput_Bps"]),
           percent(lk["of_nominal"]), number(lk["score"]),
           "SLOW" + (f" ({lk['reason']})" if lk.get("reason") else "") if lk["slow"] else "",
           hours(lk["hours_at_stake"]) if lk["slow"] else ""]
          for lk in s["links"]],
-        right={2, 3, 4, 5, 6, 7, 9}, width=width, keys=2,
+        right={3, 4, 5, 6, 7, 8, 10}, width=width, keys=2,
     )
     slow_ports = [p for p in s.get("ports", []) if p["slow"]]
     if slow_ports:

@@ -111,6 +111,21 @@ def test_a_column_empty_in_every_row_is_left_out() -> None:
     assert header.split()[-1] != "bound" and "COMM-BOUND" not in text
 
 
+def test_links_measured_by_pair_checks_say_so_and_job_only_reports_have_no_such_column() -> None:
+    snap = demo()
+    assert "measured by" not in format_snapshot(snap, width=250)  # the demo's links are all the job's
+    checked = snap["links"][0]
+    checked.update(measured_by="check", hours_at_stake=None)
+    text = format_snapshot(snap, width=250)
+    header, (rule, *rows) = next((h, body) for h, body in _tables(text) if h.startswith("src "))
+    lo, hi = next(g.span() for g in re.finditer(r"-+", rule) if header[g.start():g.end()].strip() == "measured by")
+    by_row = {tuple(row.split()[:2]): row[lo:hi].strip() for row in rows}
+    assert by_row.pop((checked["src"], checked["dst"])) == "pair check"
+    assert set(by_row.values()) == {""}
+    narrow = format_snapshot(snap, width=60)  # as blocks, one per link: the checked one says it
+    assert "measured by pair check" in narrow
+
+
 def test_alerts_are_listed_in_the_order_they_began() -> None:
     snap = demo()
     snap["alerts"] = [{**a, "step_began": began, "step_detected": began + 9, "message": f"alert {began}"}
