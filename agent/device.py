@@ -6,7 +6,8 @@ So with a device backend a timed region records a *marker* on the stream at its 
 (for PyTorch, ``torch.cuda.Event(enable_timing=True)``); the step is kept as pending, and at each
 ``end_step`` the probe asks the markers whether the device has reached them (``query``, which never
 waits) and publishes every pending step that is complete, oldest first. On a busy device that is one or
-two steps behind the host.
+two steps behind the host; one ``MAX_PENDING_STEPS`` behind (``agent/probe.py``) is stuck, and its oldest
+step is given up.
 
 Markers come from one pool and go back to it once their step is published: after the first steps no
 region allocates one. The backend is anything that fits ``Markers``: the CUDA one lives in

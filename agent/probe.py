@@ -20,6 +20,7 @@ markers: at a later ``end_step``, one or two steps behind on a busy device (see 
 from __future__ import annotations
 
 import secrets
+import sys
 import threading
 import time
 from collections import deque
@@ -50,6 +51,9 @@ from agent.records import RecordWriter
 
 SCHEMA_EVERY = 64  # frames between schema repeats, so a collector that starts late learns who we are
 CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
+# A device this many steps behind the host is stuck, not busy (a busy one lags one or two steps): the oldest
+# step's timing is abandoned so memory stays bounded; common practice, no source.
+MAX_PENDING_STEPS = 64
 
 
 class _Region:
@@ -216,6 +220,7 @@ class Probe:
         self.sender = secrets.randbits(63) if sender is None else sender  # fixed only for reproducible output
         self.seq = 0
         self.dropped = 0
+        self.abandoned_steps = 0  # device timing: steps whose markers the device never passed (see end_step)
         self.step_index = 0
         self.offset_ns: int | None = None
         self.sent_frames: list[list[bytes]] = []
@@ -478,7 +483,20 @@ class Probe:
         self._origin = last
         self.step_index += 1
         self._step_wall = self.wall_clock()
-        return self.publish_ready()
+        ok = self.publish_ready()
+        while len(self._pending) > MAX_PENDING_STEPS:
+            self._abandon(self._pending.popleft())
+        return ok
+
+    def _abandon(self, pending: PendingStep) -> None:
+        """Give up on a step the device has not finished after ``MAX_PENDING_STEPS`` more: its frame is never
+        sent (the collector sees that rank skip the step) and its markers are not reused, since the device may
+        still reach them; the first one is reported on stderr, where the job's own log shows it."""
+        if not self.abandoned_steps:
+            print(f"watchtower probe (rank {self.rank}): the device has not finished step {pending.step} "
+                  f"{MAX_PENDING_STEPS} steps later; its timing is abandoned (is a kernel or a collective hung?)",
+                  file=sys.stderr)
+        self.abandoned_steps += 1
 
     def publish_ready(self) -> bool:
         """Publish every ended step the device has finished, oldest first; never waits. False if a frame

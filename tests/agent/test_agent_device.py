@@ -15,7 +15,7 @@ from simdevice import COMM, SimDevice
 
 from agent import wire
 from agent.device import split_exposed, union_ns
-from agent.probe import Probe
+from agent.probe import MAX_PENDING_STEPS, Probe
 from agent.wire import Op
 
 LAYERS = ("embed", "block.0", "block.1", "head")
@@ -92,6 +92,26 @@ def test_every_step_published_exactly_once_in_order_while_the_device_runs_concur
     assert [s.step for s in steps] == list(range(60))
     seqs = [s.header.seq for s in steps]
     assert seqs == sorted(set(seqs))
+    for s in steps:
+        assert s.layer_ns[0].tolist() == [_kernel_ns(s.step, i) for i in range(len(LAYERS))]
+
+
+def test_a_device_that_never_catches_up_costs_bounded_memory_and_says_so(
+        device: SimDevice, capsys: pytest.CaptureFixture[str]) -> None:
+    probe = _probe(device)
+    extra = 5
+    device.pause()  # stuck: the host keeps ending steps the device never reaches
+    for step in range(MAX_PENDING_STEPS + extra):
+        _run_step(probe, device, step)
+        assert _returns_while_device_is_held(probe.end_step)
+    assert probe.pending_steps == MAX_PENDING_STEPS and probe.abandoned_steps == extra
+    said = capsys.readouterr().err.splitlines()
+    assert len(said) == 1 and "has not finished step 0" in said[0]  # once, naming the first step given up
+    device.resume()
+    device.idle()
+    assert probe.drain(deadline_s=5.0) == 0
+    steps = _steps(probe)  # the oldest steps are missing, the rest exact and in order
+    assert [s.step for s in steps] == list(range(extra, MAX_PENDING_STEPS + extra))
     for s in steps:
         assert s.layer_ns[0].tolist() == [_kernel_ns(s.step, i) for i in range(len(LAYERS))]
 
