@@ -75,7 +75,10 @@ def test_others_are_refused_counted_and_never_block(who: str, keyed: Collector, 
     probe.close()
     loss = keyed.ingest.ledger.as_json()
     assert loss["frames"] == 0 and keyed.ingest.steps == 0
-    assert loss["rejected"] >= 1 and set(loss["rejected_reasons"]) == {who}
+    # The refusal is counted under its own reason. A reconnect cut short before the greeting finished (seen
+    # under load) fails "without detail" and may add a "handshake" refusal; no other reason may appear.
+    reasons = set(loss["rejected_reasons"])
+    assert loss["rejected"] >= 1 and who in reasons and reasons <= {who, "handshake"}, reasons
 
 
 def test_an_agent_listed_later_gets_in_without_a_restart(keyed: Collector, keys: KeyFolder,
