@@ -48,6 +48,9 @@ def _table(headers: Sequence[str], rows: list[Sequence[str]], right: set[int], w
     return out
 
 
+_PER_STEP = ("compute_s", "exchange_s", "compute_worst_s", "exchange_worst_s")  # a layer's ``per_step`` keys
+
+
 def _note(s: dict[str, Any]) -> str:
     """The recording's note, less a leading "invented…" of its own (the line already says so)."""
     note = visible(s.get("note", "")).strip()
@@ -78,15 +81,16 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     ]
     out = [line for text in prose for line in _wrap(text, width)]
     out += [""]
-    out += _wrap("layers (window sums over ranks; comm-bound when exchange > "
-                 f"{percent(s.get('comm_bound_threshold'))} of the layer)", width)
+    out += _wrap("layers (time per step: on the mean rank, and on the rank with the most; comm-bound when "
+                 f"exchange > {percent(s.get('comm_bound_threshold'))} of the layer)", width)
     out += _table(
-        ["layer", "compute", "exchange", "comm", "worst rank", "bound"],
+        ["layer", "compute/step", "exchange/step", "worst compute", "worst exchange", "comm", "worst comm",
+         "bound"],
         [[visible(lay["name"]) + (f" (gradients of {visible(lay['carries'])})" if lay.get("carries") else ""),
-          seconds(lay["compute_s"]), seconds(lay["exchange_s"]), percent(lay["comm_fraction"]),
-          percent(lay["comm_fraction_worst"]), "COMM-BOUND" if lay["comm_bound"] else ""]
+          *(seconds((lay.get("per_step") or {}).get(key)) for key in _PER_STEP),
+          percent(lay["comm_fraction"]), percent(lay["comm_fraction_worst"]), "COMM-BOUND" if lay["comm_bound"] else ""]
          for lay in s["layers"]],
-        right={1, 2, 3, 4}, width=width,
+        right={1, 2, 3, 4, 5, 6}, width=width,
     )
     out += ["", *_wrap("links between nodes (beta: Hockney fit t = alpha + n/beta)", width)]
     out += _table(

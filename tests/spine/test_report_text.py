@@ -21,6 +21,7 @@ from watchtower.cli import main
 from watchtower.demo import DEMO_RECORDING
 from watchtower.report import SCHEMA_VERSION, load_recording
 from watchtower.tables import format_snapshot
+from watchtower.units import seconds
 
 DOCS = Path(__file__).parents[2] / "docs" / "snapshot.md"
 
@@ -109,6 +110,25 @@ def test_a_column_empty_in_every_row_is_left_out() -> None:
     text = format_snapshot(snap, width=250)
     header = next(h for h, _ in _tables(text) if h.startswith("layer "))
     assert header.split()[-1] != "bound" and "COMM-BOUND" not in text
+
+
+def test_layer_times_are_per_step_as_their_titles_say() -> None:
+    """Per step on the mean rank = the mean rank's window sum ÷ the window's steps (the definition in
+    docs/snapshot.md, worked by hand in tests/analysis/test_console_figures.py); the worst columns are the
+    rank with the most."""
+    snap = demo()
+    text = format_snapshot(snap, width=250)
+    header, (rule, *rows) = next((h, body) for h, body in _tables(text) if h.startswith("layer "))
+    spans = {header[g.start():g.end()].strip(): g.span() for g in re.finditer(r"-+", rule)}
+    by_name = {row[slice(*spans["layer"])].strip(): row for row in rows}
+    steps = snap["window"]["steps"]
+    for lay in snap["layers"]:
+        row = by_name[lay["name"]]
+        mean = lay["compute_s"] / steps
+        assert lay["per_step"]["compute_s"] == pytest.approx(mean, rel=1e-9)
+        assert row[slice(*spans["compute/step"])].strip() == seconds(mean)
+        assert row[slice(*spans["worst exchange"])].strip() == seconds(lay["per_step"]["exchange_worst_s"])
+        assert lay["per_step"]["exchange_worst_s"] >= lay["per_step"]["exchange_s"]
 
 
 def test_links_measured_by_pair_checks_say_so_and_job_only_reports_have_no_such_column() -> None:
