@@ -131,3 +131,37 @@ async def test_seek_progress_is_shown_until_the_seek_lands(clock: FakeClock, con
         feed.advance()
         await pilot.pause()
         assert "SEEKING" not in bar_text(app) and "step 2,000" in bar_text(app)
+
+
+def test_a_newer_seek_cuts_a_long_one_short(recording: Path) -> None:
+    # Asked mid-way through a seek to the end, a seek back to near the start is where the replay goes next,
+    # without first reading the rest of the file or drawing the place nobody wants any more.
+    feed = ReplayFeed(recording, clock=TickingClock(SNAPSHOT_PERIOD_S / RECORDS_PER_REPORT + 1e-9))
+    feed.pause()
+    reports: list[dict[str, Any]] = []
+    delivered: list[dict[str, Any]] = []
+    back = feed.first_step + 5
+
+    def report(position: dict[str, Any]) -> None:
+        reports.append(position)
+        if len(reports) == 2:
+            feed.seek(back)  # from the feed's own thread: deterministic, mid-way through the first seek
+
+    feed.report_seeks_to(report)
+    thread = threading.Thread(target=feed.start, args=(delivered.append,), daemon=True)
+    thread.start()
+    try:
+        deadline = time.monotonic() + 30
+        while len(delivered) < 1:
+            assert time.monotonic() < deadline, "the replay never showed its first step"
+            time.sleep(0.01)
+        feed.seek(feed.last_step)
+        while len(delivered) < 2:
+            assert time.monotonic() < deadline, "the replay never got back"
+            time.sleep(0.01)
+    finally:
+        feed.stop()
+        thread.join(timeout=10)
+    assert [d["replay"]["step"] for d in delivered] == [feed.first_step, back]
+    assert reports[0]["seek"][0] == reports[1]["seek"][0] == feed.last_step
+    assert all(r["seek"][0] == back for r in reports[2:])  # cut short: nothing more read towards the end
