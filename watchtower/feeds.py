@@ -16,7 +16,7 @@ from typing import Any
 from agent import wire
 from watchtower.cluster import Cluster
 from watchtower.collector import Collector
-from watchtower.console.feed import Deliver, FeedEnded
+from watchtower.console.feed import Deliver, FeedEnded, ReportSeek
 from watchtower.ingest import Ingest
 from watchtower.recording import RecordingError, RecordingReader, Tail, read_meta, resume_records
 from watchtower.snapshot import build_snapshot, cluster_for
@@ -162,6 +162,7 @@ class ReplayFeed:
         self._speed = speed
         self._target: int | None = min(max(from_step, self.first_step), self.last_step)  # first thing shown
         self._rewind = False
+        self._report_seek: ReportSeek | None = None
         self.tail: Tail | None = None
         self._open()
 
@@ -201,6 +202,9 @@ class ReplayFeed:
             self._stopped = True
             self._cond.notify_all()
 
+    def report_seeks_to(self, report: ReportSeek) -> None:
+        self._report_seek = report
+
     # ------------------------------------------------------------------ the feed's thread
     @property
     def position(self) -> int:
@@ -238,8 +242,9 @@ class ReplayFeed:
                 if target is not None:
                     self._fast_forward(target)
                     with self._cond:
-                        if self._target == target:
-                            self._target = None
+                        if self._target != target:
+                            continue  # a newer seek replaced this one: no snapshot of a place nobody wants
+                        self._target = None
                     deliver(self._snapshots.build(self._state()))
                     continue
                 if self._play_one() and self._snapshots.due():
@@ -251,7 +256,14 @@ class ReplayFeed:
             self._reader.close()
 
     def _fast_forward(self, target: int) -> None:
-        while self.position < target and not self._finished and not self._stopped:
+        """Read up to ``target`` without building snapshots, saying how far it has come once a period; a newer
+        seek or a stop cuts it short."""
+        start, reported = self.position, self.clock()
+        while self.position < target and not self._finished and not self._stopped and self._target == target:
+            now = self.clock()
+            if self._report_seek is not None and now - reported >= self.period_s:
+                reported = now
+                self._report_seek({**self._state(), "seek": (target, start)})
             self._next_record()
         self._anchor = None
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import io
+from collections.abc import Callable
 from typing import Any
 
 import pytest
@@ -34,6 +35,7 @@ class RecordingControls:
 
     def __init__(self) -> None:
         self.calls: list[tuple[str, Any]] = []
+        self.report_seek: Callable[[dict[str, Any]], None] | None = None  # the console's, once it has started
 
     def pause(self) -> None:
         self.calls.append(("pause", None))
@@ -49,6 +51,9 @@ class RecordingControls:
 
     def set_speed(self, x: float) -> None:
         self.calls.append(("set_speed", x))
+
+    def report_seeks_to(self, report: Callable[[dict[str, Any]], None]) -> None:
+        self.report_seek = report
 
 
 async def settle(pilot: Pilot[Any]) -> None:

@@ -84,6 +84,13 @@ class ConsoleApp(App[None]):
             super().__init__()
             self.snapshot = snapshot
 
+    class SeekProgressed(Message):
+        """A replay's seek has read up to a step; posted from the feed's thread, handled on the app's loop."""
+
+        def __init__(self, position: dict[str, Any]) -> None:
+            super().__init__()
+            self.position = position
+
     def __init__(
         self,
         feed: Feed,
@@ -111,6 +118,7 @@ class ConsoleApp(App[None]):
         self._view_before_how = "layers"
         self._asked: dict[str, Any] = {}  # replay state asked for by keys and not yet confirmed by the feed
         self._held: Snapshot | None = None  # the newest snapshot while frozen
+        self._seeking: dict[str, Any] | None = None  # how far the running seek has read; None when none runs
         self.ended: str | None = None  # why the feed ended the console, for the command to print
 
     def compose(self) -> ComposeResult:
@@ -143,6 +151,8 @@ class ConsoleApp(App[None]):
                 table.zebra_stripes = False
         self._fit_terminal(self.size.width, self.size.height)
         self._focus_view()
+        if self.feed.controls is not None:
+            self.feed.controls.report_seeks_to(self._report_seek)
         self.run_worker(self._run_feed, thread=True, name="feed", group="feed")
 
     def on_resize(self, event: events.Resize) -> None:
@@ -173,8 +183,18 @@ class ConsoleApp(App[None]):
         """Called on the feed's thread: hand the snapshot to the event loop and nothing else."""
         self.post_message(self.SnapshotArrived(snapshot))
 
+    def _report_seek(self, position: dict[str, Any]) -> None:
+        """Called on the feed's thread during a long seek: hand its progress to the event loop."""
+        self.post_message(self.SeekProgressed(position))
+
+    def on_console_app_seek_progressed(self, message: SeekProgressed) -> None:
+        """Move the replay bar along with the seek; the views keep the last snapshot until it gets there."""
+        self._seeking = message.position
+        self.query_one(ReplayBar).position = self._shown_position(self._seeking)
+
     def on_console_app_snapshot_arrived(self, message: SnapshotArrived) -> None:
         """Keep only the newest snapshot and draw it when the throttle allows (held while frozen)."""
+        self._seeking = None  # a replay builds no snapshot during a seek: one now means the seek is over
         if self.frozen:
             self._held = message.snapshot
             self.query_one(ReplayBar).newest_step = message.snapshot["last_step"]
@@ -207,7 +227,7 @@ class ConsoleApp(App[None]):
         self.query_one(CulpritStrip).snapshot = snapshot
         self.query_one(ViewBar).alerts = sum(1 for a in snapshot["alerts"] if a.get("step_closed") is None) + \
             len(snapshot.get("standing", []))
-        self.query_one(ReplayBar).position = self._shown_position(snapshot["replay"])
+        self.query_one(ReplayBar).position = self._shown_position(self._seeking or snapshot["replay"])
         self.current_view.snapshot = snapshot
 
     def _shown_position(self, position: dict[str, Any] | None) -> dict[str, Any] | None:
@@ -346,15 +366,16 @@ class ConsoleApp(App[None]):
     def _replay(self) -> tuple[ReplayControls, dict[str, Any] | None]:
         controls = self.feed.controls
         assert controls is not None, "check_action admits replay keys only when the feed has controls"
-        if self.snapshot is None or self.snapshot["replay"] is None:
+        position = self._seeking or (None if self.snapshot is None else self.snapshot["replay"])
+        if position is None:
             return controls, None
-        return controls, {**self.snapshot["replay"], **self._asked}
+        return controls, {**position, **self._asked}
 
     def _ask(self, **state: Any) -> None:
         """Remember what a key asked of the replay and show it at once."""
         self._asked.update(state)
-        if self.snapshot is not None:
-            self.query_one(ReplayBar).position = self._shown_position(self.snapshot["replay"])
+        if self._seeking is not None or self.snapshot is not None:
+            self.query_one(ReplayBar).position = self._shown_position(self._seeking or self.snapshot["replay"])
 
     def action_freeze(self) -> None:
         """Live: hold the view still (the feed keeps ingesting), or follow the feed again."""

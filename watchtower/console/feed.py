@@ -15,6 +15,11 @@ Snapshot = dict[str, Any]
 Deliver = Callable[[Snapshot], None]
 """Called by a feed with each new snapshot; safe to call from any thread."""
 
+ReportSeek = Callable[[dict[str, Any]], None]
+"""Called by a replay while a seek reads ahead without building snapshots (a build costs as much as reading
+many records), at most once a snapshot period: `snapshot["replay"]` as it stands mid-way, plus
+`seek: (target, start)`. Safe to call from any thread."""
+
 
 class FeedEnded(Exception):
     """Raised by a feed's ``start`` when its source is gone for good (a followed recording vanished): the
@@ -33,6 +38,9 @@ class ReplayControls(Protocol):
     def seek(self, step: int) -> None: ...
 
     def set_speed(self, x: float) -> None: ...
+
+    def report_seeks_to(self, report: ReportSeek) -> None:
+        """Where to say how far a seek has come, so a long one visibly advances."""
 
 
 class Feed(Protocol):

@@ -34,7 +34,8 @@ class ReplayBar(Widget):
         self.display = self.position is not None or self.frozen_step is not None
 
     def render(self) -> Text:
-        """`▶ PLAYING ×2 step 1,210 [█████░░░░] 0–2,400`, the bar filling the spare width."""
+        """`▶ PLAYING ×2 step 1,210 [█████░░░░] 0–2,400`, the bar filling the spare width; while seeking,
+        `⟳ SEEKING to 2,000 ×2 step 1,210 of 2,000 [█████▒▒▒░░] 0–2,400`, moving as the seek reads."""
         label = self.get_component_rich_style("replaybar--label", partial=True)
         if self.frozen_step is not None:
             newest = self.newest_step if self.newest_step is not None else self.frozen_step
@@ -43,13 +44,19 @@ class ReplayBar(Widget):
         pos = self.position
         if pos is None:
             return Text()
+        of = ""  # while seeking forward: read so far, of the way there (a backward seek reads from the top)
         if pos.get("seek") is not None:
             state = f"⟳ SEEKING to {pos['seek'][0]:,}"
+            of = f" of {pos['seek'][0]:,}" if pos["step"] <= pos["seek"][0] else ""
         else:
             state = "❚❚ PAUSED" if pos["paused"] else "▶ PLAYING"
         head = Text.assemble((f" {state} ", label), f" ×{pos['speed']:g}  step {pos['step']:,} ")
         tail = Text(f" {pos['first_step']:,}–{pos['last_step']:,}")
-        width = max(4, self.size.width - head.cell_len - tail.cell_len - 2)
+        width = self.size.width - head.cell_len - tail.cell_len - 2
+        if of and width - len(of) >= 4:  # on a narrow terminal the bar itself shows the way still to go
+            head.append(of[1:] + " ")
+            width -= len(of)
+        width = max(4, width)
         span = pos["last_step"] - pos["first_step"]
         done = width if span <= 0 else round((pos["step"] - pos["first_step"]) / span * width)
         done = min(max(done, 0), width)
