@@ -6,6 +6,7 @@ loss, node figures, the transport's security state and, on replay, the position.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -20,7 +21,7 @@ from watchtower.analysis.window import RunSeries, Window
 from watchtower.buckets import carried_label
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
-from watchtower.store import NodeInfo
+from watchtower.store import NodeInfo, WindowParts
 
 TREND_POINTS = 60
 # A rank is silent when its newest step is older than SILENT_STEPS of its own step times, and at least
@@ -50,14 +51,23 @@ class SnapshotParts:
     """What a snapshot takes from the collector's state, copied: the analysis of it (``finish_snapshot``) may
     then run on another thread while ingest goes on changing the store."""
 
-    window: Window  # the steps the figures cover
-    history: Window  # every step still held, for degradation
+    held: WindowParts  # every step still held (the history, for degradation), not yet stacked
+    window_steps: int | None  # the newest steps the figures cover (None: all held)
     series: RunSeries
     checks: Checks
     cluster: Cluster
     nic_Bps: np.ndarray
     carries: dict[str, tuple[str, ...]]
+    totals_ns: tuple[np.ndarray, np.ndarray]  # whole-run compute and exchange [R, L], copied
     facts: dict[str, Any]  # the keys only the collector knows (who, loss, nodes, liveness, ...)
+
+    @functools.cached_property
+    def history(self) -> Window:
+        return self.held.build()
+
+    @property
+    def window(self) -> Window:
+        return self.history if self.window_steps is None else self.history.last(self.window_steps)
 
 
 def build_snapshot(
@@ -91,18 +101,17 @@ def gather_snapshot(
     recorder: dict[str, Any] | None = None,
     now_ns: int | None = None,
 ) -> SnapshotParts:
-    """The part of a snapshot that reads the store; it must run where the store is written (it copies)."""
+    """The part of a snapshot that reads the store; it must run where the store is written. It copies only
+    what is small (O(ranks + nodes + layers + series)); the held steps' arrays are shared, copy on write."""
     store = ingest.store
     meta = meta or {}
-    history = store.window()
-    window = history if window_steps is None else history.last(window_steps)
+    held = store.window_parts()
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)
     now_ns = ingest.last_received_ns if now_ns is None else max(now_ns, ingest.last_received_ns)
     liveness = _liveness(ingest, now_ns)
     silent_ranks = set(liveness["silent_ranks"])
-    compute_ns, exchange_ns = store.totals_ns()
     series = store.series()
     facts = {
         "job": store.job or cluster.name,
@@ -130,13 +139,10 @@ def gather_snapshot(
         "checks": None,
         "recorder": recorder,
         "recording_gaps": list(ingest.recording_gaps),
-        "run_totals": {"layers": [
-            {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
-            for i, name in enumerate(store.layers)
-        ]},
+        "run_totals": None,
     }
-    return SnapshotParts(window, history, series, store.checks(), cluster,
-                         _window_nics(store.nodes, window.nodes), dict(store.carries), facts)
+    return SnapshotParts(held, window_steps, series, store.checks(), cluster, _window_nics(store.nodes, held.nodes),
+                         dict(store.carries), store.totals_ns(), facts)
 
 
 def analyse_parts(parts: SnapshotParts) -> dict[str, Any]:
@@ -175,6 +181,9 @@ def finish_snapshot(parts: SnapshotParts, figures: dict[str, Any] | None = None)
     facts["nodes"] = [{**node, "straggler": node["name"] in straggler_nodes} for node in facts["nodes"]]
     facts["step_time"] = {**facts["step_time"], "recent_s": recent}
     facts["steps_per_s"] = _rate(recent, liveness)
+    compute_ns, exchange_ns = (totals.sum(axis=0).tolist() for totals in parts.totals_ns)
+    facts["run_totals"] = {"layers": [{"name": name, "compute_ns": int(c), "exchange_ns": int(e)}
+                                      for name, c, e in zip(parts.held.layers, compute_ns, exchange_ns, strict=True)]}
     facts["checks"] = None if not len(parts.checks) else {
         "results": len(parts.checks), "period_s": _f(parts.checks.period_s), "budget": _f(parts.checks.budget),
         "deferred": parts.checks.deferred}
