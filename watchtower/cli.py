@@ -462,6 +462,7 @@ def _collect(args: argparse.Namespace) -> int:
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
           f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
           f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    print(f"{PROG} collect: {publisher.summary()}")
     if recorder.stops:
         state = recorder.status()
         print(f"{PROG} collect: {state['message'] or 'recording resumed'}; {recorder.stops} write failure(s), "

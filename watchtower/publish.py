@@ -9,8 +9,9 @@ pauses only for the copy; the analysis runs beside it, sharing the interpreter.
 The socket conflates (ZMQ_CONFLATE on PUB and on every subscriber: a pipe holds one message, the newest;
 it takes single-part messages only, which a snapshot is). A slow console therefore skips snapshots and a
 stopped or vanished one costs one queued message, never old snapshots and never a blocked send. While a
-build is under way the loop gathers nothing new: a period starts at the end of a build, so a build slower
-than the period makes snapshots rarer, never a backlog.
+build is under way the loop gathers nothing new, and the next one waits at least as long as the last build
+took (and at least the period): the builds then hold at most about half of the interpreter, whose lock they
+share with intake, and a slow build makes snapshots rarer, never a backlog.
 """
 
 from __future__ import annotations
@@ -46,12 +47,11 @@ def encode(snapshot: dict[str, Any]) -> bytes:
 
 @dataclass
 class PublisherStats:
-    """What publishing costs, for the benchmark and the tests."""
+    """What publishing cost (``collect`` says so when it stops)."""
 
     published: int = 0
     gather_s: float = 0.0  # on collect's loop: frame intake waits for this
     build_s: float = 0.0  # on the publisher's thread: analysis, snapshot and JSON
-    encoded_bytes: int = 0  # of the newest message
     dropped: int = 0  # sends refused (none expected: a conflating PUB never fills)
     failed: int = 0  # builds that raised
 
@@ -61,11 +61,10 @@ class SnapshotPublisher:
 
     def __init__(self, gather: Callable[[], SnapshotParts], *, period_s: float = PUBLISH_PERIOD_S,
                  folder: Path | None = None, context: zmq.Context | None = None,
-                 on_snapshot: Callable[[dict[str, Any]], None] | None = None,
                  on_error: Callable[[str], None] | None = None,
                  clock: Callable[[], float] = time.monotonic) -> None:
         self.gather, self.period_s, self.clock = gather, period_s, clock
-        self.on_snapshot, self.on_error = on_snapshot, on_error  # both called on the publisher's thread
+        self.on_error = on_error  # called on the publisher's thread
         self.path = (folder or run_dir()) / f"snapshots-{os.getpid()}.sock"
         self.endpoint = f"ipc://{self.path}"
         self.stats = PublisherStats()
@@ -78,13 +77,14 @@ class SnapshotPublisher:
         self._busy = False
         self._stopped = False
         self._last = -float("inf")
+        self._build_s = 0.0  # the last build's wall time
         self._thread = threading.Thread(target=self._run, name="snapshot-publisher", daemon=True)
         self._thread.start()  # from here on only that thread uses the socket, until close() has joined it
 
     def tick(self) -> None:
-        """On collect's loop, between drains: hand a copy of the store to the thread when one is due."""
+        """On collect's loop, between drains: gather a snapshot's parts for the thread when one is due."""
         with self._cond:
-            if self._busy or self.clock() - self._last < self.period_s:
+            if self._busy or self.clock() - self._last < max(self.period_s, self._build_s):
                 return
             self._busy = True
         started = time.perf_counter()
@@ -102,6 +102,7 @@ class SnapshotPublisher:
                 if self._stopped:
                     return
                 parts, self._parts = self._parts, None
+            started = time.perf_counter()
             try:
                 self._publish(parts)
             except Exception as exc:  # a failed build must not stop collection: say so once
@@ -112,6 +113,7 @@ class SnapshotPublisher:
             with self._cond:
                 self._busy = False
                 self._last = self.clock()
+                self._build_s = time.perf_counter() - started
 
     def _publish(self, parts: SnapshotParts) -> None:
         started = time.perf_counter()
@@ -123,9 +125,13 @@ class SnapshotPublisher:
         except zmq.Again:
             self.stats.dropped += 1
         self.stats.build_s += time.perf_counter() - started
-        self.stats.encoded_bytes = len(message)
-        if self.on_snapshot is not None:
-            self.on_snapshot(snapshot)
+
+    def summary(self) -> str:
+        """One line: how many snapshots, and what they cost the loop and the thread."""
+        stats, n = self.stats, max(1, self.stats.published + self.stats.failed)
+        return (f"{stats.published} snapshots published to consoles ({stats.gather_s / n * 1e3:.1f} ms each on the "
+                f"receiving loop, {stats.build_s / n:.2f} s each on the publisher's thread)"
+                + (f"; {stats.failed} builds failed" if stats.failed else ""))
 
     def close(self) -> None:
         with self._cond:
