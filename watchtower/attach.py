@@ -2,8 +2,9 @@
 
 A collector that records announces itself on a local ipc socket in a run folder private to the user
 (``$WATCHTOWER_RUN_DIR``, else ``/tmp/watchtower-<uid>``). A console asks each socket there who it is and
-gets the recording's path, the endpoint and the security state; it then follows the recording itself, so
-it never slows or stops the collector, and any number of consoles can watch one run.
+gets the recording's path, the endpoint, the security state and where the collector publishes its snapshots
+(``snapshots``, ``watchtower.publish``); it then subscribes to those and only draws, so it never slows or stops
+the collector, and any number of consoles can watch one run.
 """
 
 from __future__ import annotations
@@ -78,6 +79,7 @@ class RunningCollector:
     socket: Path
     job: str = ""
     recorder: dict[str, Any] | None = None
+    snapshots: str | None = None  # where its snapshots are published (None: an older collect; follow the file)
 
     def ask(self, context: zmq.Context | None = None) -> dict[str, Any] | None:
         """The collector's answer now (None when it does not answer): e.g. its recorder's state."""
@@ -98,7 +100,8 @@ def find_collectors(folder: Path | None = None, context: zmq.Context | None = No
         try:
             found.append(RunningCollector(int(info["pid"]), Path(info["recording"]), str(info["listen"]),
                                           dict(info["security"]), float(info["started"]), path,
-                                          str(info.get("job") or ""), info.get("recorder")))
+                                          str(info.get("job") or ""), info.get("recorder"),
+                                          _endpoint(info.get("snapshots"))))
         except (KeyError, TypeError, ValueError):
             continue  # not one of ours, or another version: leave it alone
     return sorted(found, key=lambda c: -c.started)
@@ -153,6 +156,11 @@ def _ask(ctx: zmq.Context, path: Path) -> dict[str, Any] | None:
         return None
     finally:
         sock.close()
+
+
+def _endpoint(value: object) -> str | None:
+    """A snapshot endpoint from a beacon: ipc only (a console subscribes on its own head node)."""
+    return value if isinstance(value, str) and value.startswith("ipc://") else None
 
 
 def _alive(path: Path) -> bool:

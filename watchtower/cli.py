@@ -30,11 +30,15 @@ from watchtower.recording import NotARecording, Recorder, RecordingError, Record
 from watchtower.tables import MIN_WIDTH
 
 if TYPE_CHECKING:
+    from watchtower.attach import RunningCollector
     from watchtower.metrics import MetricsServer
+    from watchtower.publish import SnapshotPublisher
+    from watchtower.snapshot import SnapshotParts
 
 PROG = "watchtower"
 KEYS_ENV = "WATCHTOWER_KEYS"  # the key folder when --dir is not given
 DEFAULT_KEYS = Path("watchtower-keys")
+WINDOW_STEPS = 120  # steps a console's figures cover by default, so a change shows soon
 
 
 class _Parser(argparse.ArgumentParser):
@@ -96,6 +100,11 @@ def build_parser() -> argparse.ArgumentParser:
                          help="allow listening beyond loopback without keys (shown as a standing warning)")
     collect.add_argument("--keys", type=Path, metavar="DIR",
                          help="key folder (watchtower keys init): encrypt, and accept only listed agents")
+    collect.add_argument("--cluster", type=Path,
+                         help="cluster description (TOML) for the snapshots it publishes to consoles")
+    collect.add_argument("--window", type=_positive(int), default=WINDOW_STEPS,
+                         help="steps the published snapshots' figures cover (default %(default)s)")
+    _alert_options(collect)
     _metrics_option(collect)
     collect.set_defaults(run=_collect)
 
@@ -198,13 +207,17 @@ def _metrics(text: str | None) -> MetricsServer | None:
 
 def _console_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--cluster", type=Path, help="cluster description (TOML): nominal rates, total steps")
-    parser.add_argument("--window", type=_positive(int), default=120,
-                        help="steps the console's figures cover (default %(default)s)")
+    parser.add_argument("--window", type=_positive(int),
+                        help=f"steps the console's figures cover (default {WINDOW_STEPS})")
     parser.add_argument("--interval", type=_positive(float), default=0.25, metavar="SECONDS",
                         help="shortest time between two redraws (default %(default)s)")
     parser.add_argument("--low-bandwidth", action="store_true",
                         help="for a slow remote link: redraw at most once a second, without sparklines, bars "
                              "or stripes")
+
+
+def _window(args: argparse.Namespace) -> int:
+    return args.window or WINDOW_STEPS
 
 
 def _console_settings(args: argparse.Namespace) -> dict[str, Any]:
@@ -306,7 +319,7 @@ def _run_console(feed: Feed, metrics: MetricsServer | None = None, settings: dic
 
 def _watch(args: argparse.Namespace) -> int:
     from watchtower.attach import choose, find_collectors
-    from watchtower.feeds import AttachFeed, LiveFeed
+    from watchtower.feeds import LiveFeed
 
     cluster = _cluster(args.cluster, args)
     if args.listen and (args.follow is not None or args.pid is not None or args.job is not None):
@@ -323,20 +336,46 @@ def _watch(args: argparse.Namespace) -> int:
             if metrics is not None:
                 metrics.close()
             raise
-        feed: Feed = LiveFeed(collector, cluster=cluster, security=security, window_steps=args.window)
+        feed: Feed = LiveFeed(collector, cluster=cluster, security=security, window_steps=_window(args))
         return _run_console(feed, metrics, _console_settings(args))
     if args.record or args.insecure or args.keys:
         raise UsageError("--record, --insecure and --keys go with --listen")
     if args.follow is not None and (args.pid is not None or args.job is not None):
         raise UsageError("--pid and --job choose a running collect; --follow names a recording: give one")
-    ask = None
     if args.follow is not None:
-        recording, security = args.follow, None
-    else:
-        chosen = choose(find_collectors(), pid=args.pid, job=args.job, ask=_prompt if sys.stdin.isatty() else None)
-        recording, security, ask = chosen.recording, chosen.security, chosen.ask
+        return _follow(args.follow, None, cluster, args)
+    chosen = choose(find_collectors(), pid=args.pid, job=args.job, ask=_prompt if sys.stdin.isatty() else None)
+    if chosen.snapshots is None:  # a collect that publishes no snapshots: follow its recording here
+        return _follow(chosen.recording, chosen.security, cluster, args, chosen.ask)
+    if cluster is not None or args.window is not None:
+        raise UsageError("an attached console draws the snapshots collect publishes: give --cluster, --window and "
+                         "the alert options to collect, or --follow RECORDING to analyse it in this console")
+    return _run_console(_subscribed(chosen), _metrics(args.metrics), _console_settings(args))
+
+
+def _subscribed(chosen: RunningCollector) -> Feed:
+    """A console on the snapshots ``chosen`` publishes; after a restart, on those of a collect on its recording."""
+    from watchtower.attach import find_collectors
+    from watchtower.subscribe import Publisher, SubscribedFeed
+
+    def publisher(found: RunningCollector) -> Publisher:
+        assert found.snapshots is not None
+        return Publisher(found.pid, found.snapshots, found.ask)
+
+    def find() -> Publisher | None:
+        again = [c for c in find_collectors() if c.recording == chosen.recording and c.snapshots is not None]
+        return publisher(again[0]) if again else None
+
+    return SubscribedFeed(publisher(chosen), where=str(chosen.recording), find=find)
+
+
+def _follow(recording: Path, security: dict[str, Any] | None, cluster: Cluster | None, args: argparse.Namespace,
+            ask: Callable[[], dict[str, Any] | None] | None = None) -> int:
+    """The console reads the recording itself and analyses it (``--follow``, or a collect that publishes none)."""
+    from watchtower.feeds import AttachFeed
+
     try:
-        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=args.window, ask=ask)
+        feed = AttachFeed(recording, security=security, cluster=cluster, window_steps=_window(args), ask=ask)
     except OSError as exc:
         raise UsageError(f"cannot follow {recording}: {exc.strerror}") from None
     except RecordingError as exc:
@@ -357,7 +396,7 @@ def _replay(args: argparse.Namespace) -> int:
 
     try:
         feed = ReplayFeed(args.recording, cluster=_cluster(args.cluster, args), speed=args.speed,
-                          from_step=args.from_step, window_steps=args.window)
+                          from_step=args.from_step, window_steps=_window(args))
     except RecordingError as exc:
         raise UsageError(str(exc)) from None
     return _run_console(feed, settings=_console_settings(args))
@@ -366,7 +405,7 @@ def _replay(args: argparse.Namespace) -> int:
 def _demo(args: argparse.Namespace) -> int:
     from watchtower.demo import run_demo
 
-    return run_demo(live=args.live, speed=args.speed, ranks=int(args.ranks), window=args.window,
+    return run_demo(live=args.live, speed=args.speed, ranks=int(args.ranks), window=_window(args),
                     run_console=lambda feed: _run_console(feed, settings=_console_settings(args)))
 
 
@@ -399,20 +438,23 @@ def _collect(args: argparse.Namespace) -> int:
         if metrics is not None:
             metrics.close()
         raise
-    beacon = Beacon({"recording": str(args.record.resolve()), "listen": collector.bound, "security": security})
+    publisher = _publisher(ingest, collector.bound, security, recorder, _cluster(args.cluster, args), args.window)
+    beacon = Beacon({"recording": str(args.record.resolve()), "listen": collector.bound, "security": security,
+                     "snapshots": publisher.endpoint})
     stop = threading.Event()
     for signum in (signal.SIGINT, signal.SIGTERM):
         signal.signal(signum, lambda *_: stop.set())
     print(f"{PROG} collect: listening on {collector.bound} ({security['mode']}), recording to "
           f"{args.record.resolve()}; Ctrl+C stops", file=sys.stderr, flush=True)
-    tick = None
+    ticks = [publisher.tick]
     if metrics is not None:
-        tick = _snapshot_tick(ingest, collector.bound, security, metrics, recorder)
+        ticks.append(_snapshot_tick(ingest, collector.bound, security, metrics, recorder))
         print(f"{PROG} collect: metrics on {metrics.url}", file=sys.stderr, flush=True)
     try:
-        collector.run(stop, args.duration, beacon, tick)
+        collector.run(stop, args.duration, beacon, lambda: [tick() for tick in ticks])
     finally:
         beacon.close()
+        publisher.close()
         collector.close()
         if metrics is not None:
             metrics.close()
@@ -420,11 +462,30 @@ def _collect(args: argparse.Namespace) -> int:
     print(f"{PROG} collect: {len(ingest.store.ranks)} ranks from {len(loss.senders)} senders, "
           f"{ingest.steps} rank-steps, {loss.frames} frames, {loss.bad_total} bad, {loss.missing} missing, "
           f"{sum(loss.rejected.values())} refused handshakes -> {args.record}")
+    print(f"{PROG} collect: {publisher.summary()}")
     if recorder.stops:
         state = recorder.status()
         print(f"{PROG} collect: {state['message'] or 'recording resumed'}; {recorder.stops} write failure(s), "
               f"{recorder.unrecorded} messages received but not recorded (they count as missing on replay)")
     return 0
+
+
+def _publisher(ingest: Ingest, bound: str, security: dict[str, str | None], recorder: Recorder,
+               cluster: Cluster | None, window: int) -> SnapshotPublisher:
+    """Snapshots for attached consoles, gathered between drains and built on a thread of their own."""
+    from watchtower.publish import SnapshotPublisher
+    from watchtower.snapshot import cluster_for, gather_snapshot
+
+    described = cluster_for({}, cluster)
+
+    def gather() -> SnapshotParts:
+        return gather_snapshot(ingest, described, source={"kind": "live", "where": bound}, security=security,
+                               window_steps=window, recorder=recorder.status(), now_ns=time.time_ns())
+
+    def warn(line: str) -> None:
+        print(f"{PROG} collect: warning: {line}", file=sys.stderr, flush=True)
+
+    return SnapshotPublisher(gather, on_error=warn)
 
 
 def _snapshot_tick(ingest: Ingest, bound: str, security: dict[str, str | None],

@@ -1,8 +1,10 @@
-"""Sources of snapshots for the console: a live collector, a recording replayed, a running ``collect``.
+"""Sources that ingest and analyse in the console's own process: a live collector (``watch --listen``), a
+recording followed as a collector appends to it (``watch --follow``), a recording replayed.
 
 Each feed runs in the console's thread worker: it ingests frames through the same ``Ingest`` path, builds
 a snapshot at most every ``period_s`` and hands it to ``deliver``. ``start`` returns soon after ``stop``.
-Live and replay differ only in where the frames come from.
+Live and replay differ only in where the frames come from. A console attached to a running ``collect``
+ingests nothing: it draws the snapshots collect publishes (``watchtower.subscribe``).
 """
 
 from __future__ import annotations
@@ -84,7 +86,8 @@ class LiveFeed:
 
 
 class AttachFeed:
-    """Follows the recording of a ``watchtower collect`` that keeps running after the console closes.
+    """Follows the recording of a ``watchtower collect`` that keeps running after the console closes
+    (``watch --follow``, or a collect that publishes no snapshots).
 
     It reads the whole history first, then picks up each record as the collector appends it. It only
     reads: closing the console never stops collection, and any number of consoles can follow one run.

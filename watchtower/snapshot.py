@@ -6,18 +6,22 @@ loss, node figures, the transport's security state and, on replay, the position.
 
 from __future__ import annotations
 
+import functools
 import math
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from watchtower.analysis.checks import Checks
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.summary import analyse, analysis_to_json
 from watchtower.analysis.summary import json_float as _f
+from watchtower.analysis.window import RunSeries, Window
 from watchtower.buckets import carried_label
 from watchtower.cluster import Cluster, ClusterConfigError, cluster_from_dict
 from watchtower.ingest import Ingest
-from watchtower.store import NodeInfo
+from watchtower.store import NodeInfo, WindowParts
 
 TREND_POINTS = 60
 # A rank is silent when its newest step is older than SILENT_STEPS of its own step times, and at least
@@ -42,6 +46,30 @@ def cluster_for(meta: dict, given: Cluster | None) -> Cluster:
     return Cluster.default()
 
 
+@dataclass(frozen=True)
+class SnapshotParts:
+    """What a snapshot takes from the collector's state, copied: the analysis of it (``finish_snapshot``) may
+    then run on another thread while ingest goes on changing the store."""
+
+    held: WindowParts  # every step still held (the history, for degradation), not yet stacked
+    window_steps: int | None  # the newest steps the figures cover (None: all held)
+    series: RunSeries
+    checks: Checks
+    cluster: Cluster
+    nic_Bps: np.ndarray
+    carries: dict[str, tuple[str, ...]]
+    totals_ns: tuple[np.ndarray, np.ndarray]  # whole-run compute and exchange [R, L], copied
+    facts: dict[str, Any]  # the keys only the collector knows (who, loss, nodes, liveness, ...)
+
+    @functools.cached_property
+    def history(self) -> Window:
+        return self.held.build()
+
+    @property
+    def window(self) -> Window:
+        return self.history if self.window_steps is None else self.history.last(self.window_steps)
+
+
 def build_snapshot(
     ingest: Ingest,
     cluster: Cluster,
@@ -56,29 +84,88 @@ def build_snapshot(
 ) -> dict[str, Any]:
     """``now_ns``: the wall clock when live (ages grow while nobody speaks); a recording's own clock (the
     newest record, the collector's ticks included) when None."""
+    return finish_snapshot(gather_snapshot(ingest, cluster, source=source, meta=meta, security=security,
+                                           window_steps=window_steps, replay=replay, recorder=recorder,
+                                           now_ns=now_ns))
+
+
+def gather_snapshot(
+    ingest: Ingest,
+    cluster: Cluster,
+    *,
+    source: dict[str, str],
+    meta: dict | None = None,
+    security: dict[str, Any] | None = None,
+    window_steps: int | None = None,
+    replay: dict[str, Any] | None = None,
+    recorder: dict[str, Any] | None = None,
+    now_ns: int | None = None,
+) -> SnapshotParts:
+    """The part of a snapshot that reads the store; it must run where the store is written. It copies only
+    what is small (O(ranks + nodes + layers + series)); the held steps' arrays are shared, copy on write."""
     store = ingest.store
     meta = meta or {}
-    history = store.window()  # every step still held, for degradation; the figures cover its newest steps
-    window = history if window_steps is None else history.last(window_steps)
-    series = store.series()
-    checks = store.checks()
-    bar = {key: value for key, value in (("min_effect", cluster.alert_min_effect),
-                                         ("min_hours", cluster.alert_min_hours)) if value is not None}
-    snapshot = analysis_to_json(analyse(window, series, cluster, nic_Bps=_window_nics(store.nodes, window.nodes),
-                                        history=history, checks=checks, **bar))
+    held = store.window_parts()
     ranks_by_node: dict[int, list[int]] = {}
     for rank, info in sorted(store.ranks.items()):
         ranks_by_node.setdefault(info.node, []).append(rank)
-    straggler_nodes = {s["node"] for s in snapshot["stragglers"]}
     now_ns = ingest.last_received_ns if now_ns is None else max(now_ns, ingest.last_received_ns)
     liveness = _liveness(ingest, now_ns)
     silent_ranks = set(liveness["silent_ranks"])
+    series = store.series()
+    facts = {
+        "job": store.job or cluster.name,
+        "source": source,
+        "invented": bool(meta.get("invented", False)),
+        "note": str(meta.get("note", "")),
+        "ranks": len(store.ranks),
+        "world": store.world,
+        "steps": store.steps_seen,
+        "last_step": store.last_step,
+        "steps_per_s": None,  # from the figures (finish_snapshot); the keys keep the order they always had
+        "liveness": liveness,
+        "nodes": [
+            {"name": node.name, "ranks": ranks_by_node.get(i, []), "cpu_percent": _f(node.cpu_percent),
+             "memory_percent": _f(node.memory_percent), **_nic_rates(node.nics, node.nic_values),
+             "clock_offset_s": None if node.offset_ns is None else node.offset_ns * 1e-9,
+             "last_heard_s": None if not node.last_heard_ns else max(0.0, (now_ns - node.last_heard_ns) * 1e-9),
+             "silent": _node_silent(ranks_by_node.get(i, []), silent_ranks, node.last_heard_ns, now_ns)}
+            for i, node in enumerate(store.nodes)
+        ],
+        "step_time": {"recent_s": None, "trend": [_f(x) for x in series.step_s[-TREND_POINTS:]]},
+        "loss": ingest.ledger.as_json(),
+        "security": _security(security, meta),
+        "replay": replay,
+        "checks": None,
+        "recorder": recorder,
+        "recording_gaps": list(ingest.recording_gaps),
+        "run_totals": None,
+    }
+    return SnapshotParts(held, window_steps, series, store.checks(), cluster, _window_nics(store.nodes, held.nodes),
+                         dict(store.carries), store.totals_ns(), facts)
+
+
+def analyse_parts(parts: SnapshotParts) -> dict[str, Any]:
+    """The figures of a snapshot: the full analysis of the window (``analysis_to_json``)."""
+    cluster = parts.cluster
+    bar = {key: value for key, value in (("min_effect", cluster.alert_min_effect),
+                                         ("min_hours", cluster.alert_min_hours)) if value is not None}
+    return analysis_to_json(analyse(parts.window, parts.series, cluster, nic_Bps=parts.nic_Bps,
+                                    history=parts.history, checks=parts.checks, **bar))
+
+
+def finish_snapshot(parts: SnapshotParts, figures: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The snapshot from gathered parts and their figures (``analyse_parts`` when not given); touches no
+    shared state, so it may run on a thread of its own."""
+    snapshot = analyse_parts(parts) if figures is None else figures
+    facts = dict(parts.facts)
+    window = parts.window
     worst = worst_ranks(window, WORST_RANKS)
     node_names = window.nodes
     rank_node = dict(zip(window.ranks.tolist(), window.rank_node.tolist(), strict=True))
     per_step = 1.0 / worst.steps if worst.steps else math.nan
     for i, layer in enumerate(snapshot["layers"]):
-        carried = store.carries.get(layer["name"])
+        carried = parts.carries.get(layer["name"])
         layer["carries"] = carried_label(carried) if carried else None
         layer["worst_ranks"] = [
             {"rank": int(r), "node": node_names[rank_node[int(r)]], "compute_s": _f(c), "exchange_s": _f(e),
@@ -88,46 +175,22 @@ def build_snapshot(
                                      worst.comm_fraction[:, i], worst.waits_on[:, i], strict=True)
             if math.isfinite(f)
         ]
-    compute_ns, exchange_ns = store.totals_ns()
-    trend = series.step_s[-TREND_POINTS:]
+    straggler_nodes = {s["node"] for s in snapshot["stragglers"]}
+    liveness = facts["liveness"]
     recent = snapshot.get("recent_step_s")
-    snapshot.update({
-        "job": store.job or cluster.name,
-        "source": source,
-        "invented": bool(meta.get("invented", False)),
-        "note": str(meta.get("note", "")),
-        "ranks": len(store.ranks),
-        "world": store.world,
-        "steps": store.steps_seen,
-        "last_step": store.last_step,
-        "steps_per_s": _rate(recent, liveness),
-        "liveness": liveness,
-        "nodes": [
-            {"name": node.name, "ranks": ranks_by_node.get(i, []), "cpu_percent": _f(node.cpu_percent),
-             "memory_percent": _f(node.memory_percent), **_nic_rates(node.nics, node.nic_values),
-             "clock_offset_s": None if node.offset_ns is None else node.offset_ns * 1e-9,
-             "last_heard_s": None if not node.last_heard_ns else max(0.0, (now_ns - node.last_heard_ns) * 1e-9),
-             "silent": _node_silent(ranks_by_node.get(i, []), silent_ranks, node.last_heard_ns, now_ns),
-             "straggler": node.name in straggler_nodes}
-            for i, node in enumerate(store.nodes)
-        ],
-        "step_time": {"recent_s": recent, "trend": [_f(x) for x in trend]},
-        "loss": ingest.ledger.as_json(),
-        "security": _security(security, meta),
-        "replay": replay,
-        "checks": None if not len(checks) else {
-            "results": len(checks), "period_s": _f(checks.period_s), "budget": _f(checks.budget),
-            "deferred": checks.deferred},
-        "recorder": recorder,
-        "recording_gaps": ingest.recording_gaps,
-        "run_totals": {"layers": [
-            {"name": name, "compute_ns": int(compute_ns[:, i].sum()), "exchange_ns": int(exchange_ns[:, i].sum())}
-            for i, name in enumerate(store.layers)
-        ]},
-    })
+    facts["nodes"] = [{**node, "straggler": node["name"] in straggler_nodes} for node in facts["nodes"]]
+    facts["step_time"] = {**facts["step_time"], "recent_s": recent}
+    facts["steps_per_s"] = _rate(recent, liveness)
+    compute_ns, exchange_ns = (totals.sum(axis=0).tolist() for totals in parts.totals_ns)
+    facts["run_totals"] = {"layers": [{"name": name, "compute_ns": int(c), "exchange_ns": int(e)}
+                                      for name, c, e in zip(parts.held.layers, compute_ns, exchange_ns, strict=True)]}
+    facts["checks"] = None if not len(parts.checks) else {
+        "results": len(parts.checks), "period_s": _f(parts.checks.period_s), "budget": _f(parts.checks.budget),
+        "deferred": parts.checks.deferred}
+    snapshot.update(facts)
     if liveness["stalled"]:
         snapshot["eta_s"] = None
-    snapshot["alerts"] = snapshot["alerts"] + _silence_alerts(liveness, store.job or cluster.name)
+    snapshot["alerts"] = snapshot["alerts"] + _silence_alerts(liveness, facts["job"])
     return snapshot
 
 

@@ -59,6 +59,13 @@ class _StepSlab:
     reported: int = 0
     transfers: list[np.ndarray] = field(default_factory=list)  # float64 [8, E] per rank, see _TRANSFER_ROWS
     collectives: list[np.ndarray] = field(default_factory=list)
+    shared: bool = False  # a gathered window (WindowParts) still reads these arrays: copy before writing
+
+    def unshare(self) -> None:
+        """Copy on write: the next writer gets arrays of its own, the reader keeps the ones it holds."""
+        self.compute, self.exchange, self.duration = self.compute.copy(), self.exchange.copy(), self.duration.copy()
+        self.transfers, self.collectives = list(self.transfers), list(self.collectives)
+        self.shared = False
 
 
 class Store:
@@ -331,11 +338,19 @@ class Store:
                 self._slabs = OrderedDict(sorted(self._slabs.items()))
             self.steps_seen += 1
             self._trim()
-        elif slab.compute.shape != shape:
+            return slab
+        self._fit(slab)
+        if slab.shared:
+            slab.unshare()
+        return slab
+
+    def _fit(self, slab: _StepSlab) -> None:
+        """Grow a step's arrays to the ranks and layers known now (new arrays: a reader keeps the old ones)."""
+        shape = (len(self._row), len(self.layers))
+        if slab.compute.shape != shape:
             slab.compute = _grown(slab.compute, shape, np.nan)
             slab.exchange = _grown(slab.exchange, shape, np.nan)
             slab.duration = _grown(slab.duration[:, None], (shape[0], 1), np.nan)[:, 0]
-        return slab
 
     def _trim(self) -> None:
         cells = max(1, len(self._row) * max(1, len(self.layers)))
@@ -355,33 +370,23 @@ class Store:
     def window(self) -> Window:
         """The steps held in full as a Window: every step up to the newest one all known ranks reported
         (``Window.last`` narrows it to the newest few)."""
-        n_layers = len(self.layers)
+        return self.window_parts().build()
+
+    def window_parts(self) -> WindowParts:
+        """What ``window()`` copies, taken without copying (O(steps + ranks)): the steps' arrays are marked
+        shared, so ingest writes to copies of them from now on and ``build`` may run on another thread."""
         newest = self.newest_complete_step()
-        steps = [s for s in self._slabs if s <= newest]
         rank_ids = sorted(self._row)
-        rows = np.array([self._row[r] for r in rank_ids], dtype=np.int64)
-        shape = (len(steps), len(rank_ids), n_layers)
-        compute, exchange = np.full(shape, np.nan), np.full(shape, np.nan)
-        duration = np.full(shape[:2], np.nan)
-        transfers, collectives = [], []
-        for i, step in enumerate(steps):
-            slab = self._slab(step)
-            compute[i], exchange[i], duration[i] = slab.compute[rows], slab.exchange[rows], slab.duration[rows]
-            transfers.extend(slab.transfers)
-            collectives.extend(slab.collectives)
-        ranks = np.array(rank_ids, dtype=np.int32)
-        return Window(
-            layers=tuple(self.layers),
-            nodes=tuple(n.name for n in self.nodes),
-            ranks=ranks,
-            rank_node=np.array([self.ranks[r].node for r in ranks.tolist()], dtype=np.int32),
-            steps=np.array(steps, dtype=np.int64),
-            compute_s=compute,
-            exchange_s=exchange,
-            step_s=duration,
-            transfers=_transfers(transfers),
-            collectives=_collectives(collectives),
-        )
+        slabs = []
+        for step, slab in self._slabs.items():
+            if step <= newest:
+                self._fit(slab)
+                slab.shared = True
+                slabs.append((step, slab.compute, slab.exchange, slab.duration, tuple(slab.transfers),
+                              tuple(slab.collectives)))
+        return WindowParts(tuple(self.layers), tuple(n.name for n in self.nodes), np.array(rank_ids, np.int32),
+                           np.array([self._row[r] for r in rank_ids], np.int64),
+                           np.array([self.ranks[r].node for r in rank_ids], np.int32), slabs)
 
     def series(self) -> RunSeries:
         steps = sorted(self._series_step)
@@ -408,6 +413,41 @@ class Store:
         """Whole-run compute and exchange nanoseconds [R, L] (exact integer sums), ranks ascending."""
         rows = [self._row[r] for r in sorted(self._row)]
         return self.total_compute_ns[rows], self.total_exchange_ns[rows]
+
+
+@dataclass(frozen=True)
+class WindowParts:
+    """The held steps' arrays as the store had them (``Store.window_parts``); ``build`` stacks them."""
+
+    layers: tuple[str, ...]
+    nodes: tuple[str, ...]
+    ranks: np.ndarray
+    rows: np.ndarray  # each rank's row in the steps' arrays
+    rank_node: np.ndarray
+    slabs: list[tuple[int, np.ndarray, np.ndarray, np.ndarray, tuple[np.ndarray, ...], tuple[np.ndarray, ...]]]
+
+    def build(self) -> Window:
+        shape = (len(self.slabs), len(self.ranks), len(self.layers))
+        compute, exchange = np.full(shape, np.nan), np.full(shape, np.nan)
+        duration = np.full(shape[:2], np.nan)
+        transfers: list[np.ndarray] = []
+        collectives: list[np.ndarray] = []
+        for i, (_, c, e, d, t, k) in enumerate(self.slabs):
+            compute[i], exchange[i], duration[i] = c[self.rows], e[self.rows], d[self.rows]
+            transfers.extend(t)
+            collectives.extend(k)
+        return Window(
+            layers=self.layers,
+            nodes=self.nodes,
+            ranks=self.ranks,
+            rank_node=self.rank_node,
+            steps=np.array([slab[0] for slab in self.slabs], dtype=np.int64),
+            compute_s=compute,
+            exchange_s=exchange,
+            step_s=duration,
+            transfers=_transfers(transfers),
+            collectives=_collectives(collectives),
+        )
 
 
 _IS_COLLECTIVE = np.zeros(256, dtype=bool)  # indexed by op value (the decoder admits only known ops)

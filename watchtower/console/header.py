@@ -17,7 +17,7 @@ SEPARATOR = " · "
 
 class JobHeader(Widget):
     """Five lines of job-wide figures, plus standing lines while the transport is insecure, recording has
-    stopped or ranks are silent."""
+    stopped, ranks are silent or the attached collector has stopped."""
 
     COMPONENT_CLASSES: ClassVar[set[str]] = {
         "header--title",
@@ -62,6 +62,9 @@ class JobHeader(Widget):
         if recorder and recorder["state"] == "stopped":
             lines.append(self._alarm(f"{recorder['message']} · {fmt.count(recorder['unrecorded'])} messages not "
                                      "recorded (still received and shown)", width))
+        attached = snap.get("attached")
+        if attached and attached.get("state") == "stopped":
+            lines.append(self._alarm(attached["message"], width))
         for line in lines:
             line.no_wrap = True
             line.overflow = "ellipsis"
