@@ -81,13 +81,15 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
     ]
     out = [line for text in prose for line in _wrap(text, width)]
     out += [""]
+    widest = max(((lay.get("per_step") or {}).get(key) or 0.0 for lay in s["layers"] for key in _PER_STEP),
+                 default=0.0)  # the unit a zero is shown in
     out += _wrap("layers (time per step: on the mean rank, and on the rank with the most; comm-bound when "
                  f"exchange > {percent(s.get('comm_bound_threshold'))} of the layer)", width)
     out += _table(
         ["layer", "compute/step", "exchange/step", "worst compute", "worst exchange", "comm", "worst comm",
          "bound"],
         [[visible(lay["name"]) + (f" (gradients of {visible(lay['carries'])})" if lay.get("carries") else ""),
-          *(seconds((lay.get("per_step") or {}).get(key)) for key in _PER_STEP),
+          *(seconds((lay.get("per_step") or {}).get(key), widest) for key in _PER_STEP),
           percent(lay["comm_fraction"]), percent(lay["comm_fraction_worst"]), "COMM-BOUND" if lay["comm_bound"] else ""]
          for lay in s["layers"]],
         right={1, 2, 3, 4, 5, 6}, width=width,

@@ -63,21 +63,26 @@ def rate(bytes_per_s: float | None) -> str:
     return _scaled(bytes_per_s, [(1e12, "TB/s"), (1e9, "GB/s"), (1e6, "MB/s"), (1e3, "kB/s"), (1.0, "B/s")])
 
 
-def seconds(value: float | None) -> str:
-    """A short duration with the unit that keeps three significant digits."""
+_TIME_UNITS = ((1.0, "s"), (1e-3, "ms"), (1e-6, "µs"), (1e-9, "ns"))
+
+
+def seconds(value: float | None, like: float | None = None) -> str:
+    """A short duration with the unit that keeps three significant digits. Zero fits every unit: it takes
+    the unit ``like`` (its column's largest figure) would have, so "0.00 ms" stands among milliseconds."""
     if value is None:
         return MISSING
     if value == 0:
-        return "0.00 s"  # no unit fits zero better than another; keep the three digits of its neighbours
-    return _scaled(value, [(1.0, "s"), (1e-3, "ms"), (1e-6, "µs"), (1e-9, "ns")])
+        unit = next((u for f, u in _TIME_UNITS if abs(like or 0.0) >= f), "s") if like else "s"
+        return f"0.00 {unit}"
+    return _scaled(value, _TIME_UNITS)
 
 
-def signed_seconds(value: float | None) -> str:
+def signed_seconds(value: float | None, like: float | None = None) -> str:
     """A clock offset, whose sign says which way the node's clock is off."""
     if value is None:
         return MISSING
     if value == 0:
-        return seconds(0.0)  # the reference clock itself: no direction to show
+        return seconds(0.0, like)  # the reference clock itself: no direction to show
     return ("+" if value > 0 else "−") + seconds(abs(value))
 
 

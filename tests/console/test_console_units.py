@@ -114,6 +114,9 @@ def test_counts_agree_with_their_noun_and_zero_keeps_its_unit() -> None:
     assert fmt.counted(1, "alert") == "1 alert" and fmt.counted(3, "alert") == "3 alerts"
     assert fmt.counted(4096, "rank") == "4,096 ranks"
     assert fmt.signed_seconds(0.0) == fmt.seconds(0.0) == "0.00 s"  # no "+0 s" beside "+1.20 ms"
+    # ...and among milliseconds a zero is "0.00 ms", not "0.00 s": it takes its column's unit
+    assert fmt.signed_seconds(0.0, like=1.2e-3) == fmt.seconds(0.0, like=0.162) == "0.00 ms"
+    assert fmt.seconds(0.0, like=3.4e-5) == "0.00 µs" and fmt.seconds(0.0, like=2.5) == "0.00 s"
     assert fmt.signed_seconds(1.2e-3) == "+1.20 ms"
 
 

@@ -145,8 +145,8 @@ class WorstRanksScreen(ModalScreen[None]):
         return [
             Text(str(rank["rank"]), justify="right"),
             fmt.literal(rank["node"]),
-            Text(fmt.seconds(compute), justify="right"),
-            Text(fmt.seconds(exchange), justify="right"),
+            Text(fmt.seconds(compute, self._scale), justify="right"),
+            Text(fmt.seconds(exchange, self._scale), justify="right"),
             Text(fmt.percent(rank["comm_fraction"]), justify="right"),
             fmt.literal(rank["_waits"]),
             Text.assemble((compute_bar, self._paint("compute")), (exchange_bar, self._paint("exchange"))),

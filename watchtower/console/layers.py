@@ -88,9 +88,9 @@ class LayersView(TableView):
         return [
             Text(COMM_MARK if bound else "", self.paint("bad")),
             fmt.fit(fmt.literal(layer["name"]), self._name_width),
-            Text(fmt.seconds(compute), justify="right"),
-            Text(fmt.seconds(exchange), justify="right"),
-            Text(fmt.seconds(per_step.get("exchange_worst_s")), justify="right"),
+            Text(fmt.seconds(compute, self._scale), justify="right"),
+            Text(fmt.seconds(exchange, self._scale), justify="right"),
+            Text(fmt.seconds(per_step.get("exchange_worst_s"), self._scale), justify="right"),
             Text.assemble((compute_bar, self.paint("compute")), (exchange_bar, self.paint("exchange"))),
             Text(fmt.percent(layer["comm_fraction"]), self.paint("bad") if bound else "", justify="right"),
             Text(fmt.percent(layer["comm_fraction_worst"]), justify="right"),

@@ -59,6 +59,7 @@ class NodesView(TableView):
 
     def __init__(self) -> None:
         super().__init__(id="nodes")
+        self._widest_offset = 0.0  # the clock column's largest offset: the unit a zero offset is shown in
 
     def compose(self) -> ComposeResult:
         yield Static(id="nodes-title", classes="view-title")
@@ -95,6 +96,7 @@ class NodesView(TableView):
         for port in snapshot.get("ports", []):
             ports.setdefault(port["node"], {})[port["direction"]] = port
         nodes = [{**node, "ports": ports.get(node["name"], {})} for node in snapshot["nodes"]]
+        self._widest_offset = max((abs(n["clock_offset_s"] or 0.0) for n in nodes), default=0.0)
         self.table.set_columns(self._columns(nodes), self.size.width - 2)
         self.table.set_records(nodes)
         self._retitle()
@@ -132,7 +134,7 @@ class NodesView(TableView):
             Text(fmt.rate(node["nic_in_Bps"]), justify="right"),
             Text(fmt.plain_percent(node["cpu_percent"]), justify="right"),
             Text(fmt.plain_percent(node["memory_percent"]), justify="right"),
-            Text(fmt.signed_seconds(node["clock_offset_s"]), justify="right"),
+            Text(fmt.signed_seconds(node["clock_offset_s"], self._widest_offset), justify="right"),
         ]
 
     def _retitle(self) -> None:
