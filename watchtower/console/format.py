@@ -48,6 +48,17 @@ def fit(text: Text, width: int) -> Text:
     return clipped
 
 
+def clauses(first: Text, optional: Sequence[Text | str], width: int, sep: str = " · ") -> Text:
+    """A one-line caption: ``first``, then each optional clause whole, in order, while it fits in ``width``
+    cells; a clause that does not fit is left out, never cut mid-word (the detail line says the rest)."""
+    out = first.copy()
+    for clause in optional:
+        piece = Text(sep) + (clause if isinstance(clause, Text) else Text(clause))
+        if out.cell_len + piece.cell_len <= width:
+            out.append_text(piece)
+    return out
+
+
 def sparkline(values: Sequence[float | None], width: int) -> str:
     """The last `width` values as block characters scaled between their own min and max."""
     recent = [v for v in values if v is not None][-width:]

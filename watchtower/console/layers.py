@@ -59,6 +59,7 @@ class LayersView(TableView):
         """Give spare width to the bar first, then to the names."""
         if self.snapshot is not None:
             self._layout_columns()
+            self._retitle()
 
     def _layout_columns(self) -> None:
         """Names whole and figures whole: a narrow terminal leaves out the bar, then the worst rank's figures."""
@@ -99,16 +100,13 @@ class LayersView(TableView):
     def _retitle(self) -> None:
         table = self.table
         arrow = "▼" if table.sort_key.descending != table.flipped else "▲"
-        title = Text.assemble(
-            (fmt.counted(table.shown_records, "layer"), self.paint("title")),
-            f" by {table.sort_key.label} {arrow}",
-            " · ",
-            ("█", self.paint("compute")),
-            " compute ",
-            ("░", self.paint("exchange")),
-            " exchange · ",
-            (COMM_MARK, self.paint("bad")),
-            " comm-bound · per step: mean rank, worst: the rank with the most",
+        title = fmt.clauses(
+            Text.assemble((fmt.counted(table.shown_records, "layer"), self.paint("title")),
+                          f" by {table.sort_key.label} {arrow}"),
+            [Text.assemble(("█", self.paint("compute")), " compute ", ("░", self.paint("exchange")), " exchange"),
+             Text.assemble((COMM_MARK, self.paint("bad")), " comm-bound"),
+             "per step: mean rank, worst: the rank with the most"],
+            self._title_width(),
         )
         self.query_one("#layers-title", Static).update(title)
 

@@ -163,11 +163,9 @@ class LinksView(TableView):
             f" (fixed: step {fmt.seconds(fixed['step_s'])}, speedup {fmt.number(fixed['speedup'])})"
             if fixed is not None and slow else "",
         )
-        if "%nom" not in hidden:
-            title.append(" · %nom = throughput ÷ nominal")
-        if hidden:
-            title.append(f" · {', '.join(hidden)}: in the detail line")
-        self.query_one("#links-title", Static).update(title)
+        optional = [] if "%nom" in hidden else ["%nom = throughput ÷ nominal"]
+        optional += [f"{', '.join(hidden)}: in the detail line"] if hidden else []
+        self.query_one("#links-title", Static).update(fmt.clauses(title, optional, self._title_width()))
 
     def _describe(self) -> None:
         link = self.table.record_at_cursor()

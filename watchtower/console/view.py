@@ -88,5 +88,9 @@ class TableView(SnapshotView):
     def _retitle(self) -> None:
         raise NotImplementedError
 
+    def _title_width(self) -> int:
+        """Cells the one-line title has (its padding taken off); unbounded before the first layout."""
+        return self.size.width - 2 if self.size.width else 1 << 16
+
     def _describe(self) -> None:
         raise NotImplementedError
