@@ -201,9 +201,9 @@ class Collector:
         if self.recorder is not None:
             self.recorder.write_many(batch)
         known = len(self.ingest.foreign_jobs)
-        for received_ns, frames in batch:
-            message = self.ingest.feed(received_ns, frames)
-            if self.on_message is not None:
+        messages = self.ingest.feed_many(batch)
+        if self.on_message is not None:
+            for (received_ns, frames), message in zip(batch, messages, strict=True):
                 self.on_message(received_ns, frames, message)
         if len(self.ingest.foreign_jobs) > known and self.on_foreign_job is not None:
             for job in list(self.ingest.foreign_jobs)[known:]:
