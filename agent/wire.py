@@ -18,7 +18,9 @@ from enum import IntEnum
 import numpy as np
 
 MAGIC = b"wtwr"
-VERSION = 1
+VERSION = 1  # what every kind but BATCH is stamped with, unchanged since version 1
+BATCH_VERSION = 2  # version 2 adds BATCH; a version-1 reader refuses a batch (bad-version) rather than misread it
+KNOWN_VERSIONS = (VERSION, BATCH_VERSION)
 
 HEADER = struct.Struct("<4sHHQQqII")  # magic, version, kind, sender, seq, wall_ns, count_a, count_b
 assert HEADER.size == 40
@@ -33,6 +35,9 @@ MAX_WORLD = 1 << 20
 MAX_CHECK_PEERS = 4096  # nodes a pair-check message may name
 MAX_CHECK_RESULTS = 4096  # pair-check results in one CHECK message
 MAX_ENDPOINT_BYTES = 256
+MAX_BATCH_MESSAGES = 1024  # messages in one BATCH
+MAX_BATCH_PARTS = 4  # frames of one message in a batch (the most any kind has)
+MAX_BATCH_BYTES = 16 << 20  # bytes of the messages in one BATCH
 
 
 class Kind(IntEnum):
@@ -47,6 +52,7 @@ class Kind(IntEnum):
     CHECK_HELLO = 7
     CHECK_PEERS = 8
     CHECK = 9
+    BATCH = 10
 
 
 class Op(IntEnum):
@@ -302,6 +308,39 @@ def encode_checks(sender: int, seq: int, wall_ns: int, *, period_s: float, budge
     ]
 
 
+def encode_batch(sender: int, seq: int, wall_ns: int, messages: list[list[bytes]]) -> list[bytes]:
+    """Several messages (each with its own header: sender and sequence number intact) as one, so that a node
+    daemon sends one message where its ranks sent many. Frame 1 holds each message's frame count."""
+    counts = bytes(len(frames) for frames in messages)
+    size = sum(len(frame) for frames in messages for frame in frames)
+    head = HEADER.pack(MAGIC, BATCH_VERSION, Kind.BATCH, sender, seq, wall_ns, len(messages), size)
+    return [head, counts, *(frame for frames in messages for frame in frames)]
+
+
+def unpack_batch(frames: list[bytes] | list[memoryview]) -> list[list[bytes]] | list[list[memoryview]]:
+    """The messages of a BATCH, each left for ``decode`` to judge as if it came alone. A batch that is not
+    exactly what it declares (torn, lying counts, beyond the caps) raises ``WireError`` and is refused whole."""
+    header = decode_header(frames[0]) if frames else None
+    if header is None or header.kind is not Kind.BATCH or len(frames) < 2:
+        raise WireError("bad-batch", "not a batch")
+    if header.count_a > MAX_BATCH_MESSAGES or header.count_b > MAX_BATCH_BYTES:
+        raise WireError("oversize-batch", f"{header.count_a} messages, {header.count_b} bytes")
+    counts = bytes(frames[1])
+    if len(counts) != header.count_a or not header.count_a:
+        raise WireError("bad-batch", f"{len(counts)} frame counts for {header.count_a} messages")
+    if min(counts) < 1 or max(counts) > MAX_BATCH_PARTS:
+        raise WireError("bad-batch", "a message of no frames or too many")
+    if sum(counts) != len(frames) - 2:
+        raise WireError("bad-batch", f"counts say {sum(counts)} frames, the batch has {len(frames) - 2}")
+    if sum(map(len, frames[2:])) != header.count_b:
+        raise WireError("bad-batch", f"declared {header.count_b} bytes")
+    out, at = [], 2
+    for count in counts:
+        out.append(list(frames[at:at + count]))
+        at += count
+    return out
+
+
 def clock_offset(t0: int, t1: int, t2: int, t3: int) -> tuple[int, int]:
     """NTP's estimate from a two-way exchange: offset = ((t1-t0)+(t2-t3))/2, delay = (t3-t0)-(t2-t1)."""
     return ((t1 - t0) + (t2 - t3)) // 2, (t3 - t0) - (t2 - t1)
@@ -336,8 +375,8 @@ def decode_header(frame: bytes | memoryview) -> Header:
     magic, version, kind, sender, seq, wall_ns, count_a, count_b = HEADER.unpack(frame)
     if magic != MAGIC:
         raise WireError("bad-magic")
-    if version != VERSION:
-        raise WireError("bad-version", f"version {version}, this reader knows {VERSION}")
+    if version not in KNOWN_VERSIONS:
+        raise WireError("bad-version", f"version {version}, this reader knows {KNOWN_VERSIONS}")
     try:
         kind = Kind(kind)
     except ValueError:
@@ -357,6 +396,8 @@ def decode(frames: list[bytes] | list[memoryview]) -> Message:
     if not frames:
         raise WireError("empty")
     header = decode_header(frames[0])
+    if header.kind is Kind.BATCH:  # a collector unpacks batches first (``unpack_batch``); one inside is refused
+        raise WireError("nested-batch", "a BATCH where a message belongs")
     if len(frames) != _PARTS[header.kind]:
         raise WireError("bad-part-count", f"{header.kind.name} has {len(frames)} parts")
     meta_struct = _META.get(header.kind)
