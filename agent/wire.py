@@ -675,7 +675,8 @@ def decode_steps(messages: list[list[bytes]] | list[list[memoryview]]) -> StepBa
     owner_layer = np.repeat(np.arange(n), n_layers)
     owner = np.repeat(np.arange(n), n_exchanges)
     bad = np.zeros(n, dtype=bool)
-    bad[owner_layer[(layers < 0).any(axis=0)]] = True
+    if layers.size and layers.min() < 0:
+        bad[owner_layer[(layers < 0).any(axis=0)]] = True
     if table.shape[1]:
         ops = table[X_OP]
         known = (ops >= 0) & (ops < len(_KNOWN_OP))
@@ -698,7 +699,7 @@ def decode_steps(messages: list[list[bytes]] | list[list[memoryview]]) -> StepBa
                         dropped_total, schema_id, layers[:, starts[i]:starts[i + 1]],
                         table[:, tstarts[i]:tstarts[i + 1]])
     return StepBatch(steps, layers, table, layer_start, table_start,
-                     _segment_max(layers.max(axis=0, initial=-1), layer_start),
+                     _segment_max(np.maximum(layers[0], layers[1]), layer_start),
                      _segment_max(table[X_END], table_start), _segment_max(table[X_NBYTES], table_start))
 
 

@@ -29,6 +29,7 @@ MAX_EXCHANGE_BYTES = 1 << 40  # one exchange of a terabyte
 MAX_NIC_BPS = 1e13  # 80 Tb/s through one NIC: beyond any interface
 MAX_FOREIGN_SENDERS = 1 << 16  # senders of other jobs remembered
 MAX_GAPS = 100  # recording gaps kept from the collector's notes
+FEED_CHUNK = 256  # records decoded and stored at once: measured fastest here (bench_ingest.py; 4096 is 2x slower)
 
 
 class Ingest:
@@ -180,7 +181,10 @@ class Ingest:
         """Feed a batch of records (what a collector drains at once) with exactly the outcome of ``feed``
         on each in turn, and its answers: STEP messages are validated together (``wire.decode_steps``) and
         each run of them between other messages goes into the store at once (``Store.add_steps``); the
-        per-message part is only the loss accounting and the plausibility checks, which depend on order."""
+        per-message part is only the loss accounting and the plausibility checks, which depend on order.
+        A long drain goes ``FEED_CHUNK`` records at a time, so the arrays it stacks stay in the CPU's cache."""
+        if len(records) > FEED_CHUNK:
+            return [m for at in range(0, len(records), FEED_CHUNK) for m in self.feed_many(records[at:at + FEED_CHUNK])]
         batch = wire.decode_steps([frames for _, frames in records])
         out: list[wire.Message | None] = []
         run: list[tuple[int, wire.Step, int]] = []  # (index in out, step, received_ns) held for the store

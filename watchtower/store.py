@@ -295,8 +295,13 @@ class Store:
         columns = np.concatenate([info.layer_map for info in infos])
         layer_ns = np.concatenate([m.layer_ns for m in messages], axis=1)
         rows = np.repeat(np.array([self._row[info.rank] for info in infos], np.int64), widths)
-        np.add.at(self.total_compute_ns, (rows, columns), layer_ns[0])
-        np.add.at(self.total_exchange_ns, (rows, columns), layer_ns[1])
+        if len({info.rank for info in infos}) == len(infos):  # each rank once: no cell twice, a plain sum
+            cells = rows * self.total_compute_ns.shape[1] + columns
+            self.total_compute_ns.reshape(-1)[cells] += layer_ns[0]
+            self.total_exchange_ns.reshape(-1)[cells] += layer_ns[1]
+        else:
+            np.add.at(self.total_compute_ns, (rows, columns), layer_ns[0])
+            np.add.at(self.total_exchange_ns, (rows, columns), layer_ns[1])
         cuts = np.searchsorted(np.repeat(slab_of, widths), np.arange(len(slabs) + 1))
         for i, slab in enumerate(slabs.values()):
             cell = slice(cuts[i], cuts[i + 1])
@@ -357,13 +362,16 @@ class Store:
         if not keep.any():
             return
         width = len(self.nodes) + 1
-        keys, where = np.unique(owner[keep] * width + src[keep], return_inverse=True)
+        cell = owner[keep] * width + src[keep]  # (message, source node), ascending as the messages came
+        bins = len(taken) * width
+        keys = np.flatnonzero(np.bincount(cell, minlength=bins))
         nbytes = rows[4][keep]
-        sums_bytes = np.bincount(where, nbytes)
-        sums_seconds = np.bincount(where, seconds[keep])
-        peak = np.zeros(len(keys))
+        sums_bytes = np.bincount(cell, nbytes, minlength=bins)[keys]
+        sums_seconds = np.bincount(cell, seconds[keep], minlength=bins)[keys]
+        peak = np.zeros(bins)
         with np.errstate(divide="ignore", invalid="ignore"):
-            np.maximum.at(peak, where, np.where(seconds[keep] > 0, nbytes / seconds[keep], 0.0))
+            np.maximum.at(peak, cell, np.where(seconds[keep] > 0, nbytes / seconds[keep], 0.0))
+        peak = peak[keys]
         for key, b, t, fastest in zip(keys.tolist(), sums_bytes.tolist(), sums_seconds.tolist(), peak.tolist(),
                                       strict=True):
             i, source = divmod(key, width)
