@@ -192,8 +192,7 @@ class RecordWriter:
         """Write all ``pieces`` with as few ``os.writev`` calls as the system's IOV_MAX allows; a short
         write goes on from where it stopped (the retry reports the real error, e.g. ENOSPC). Returns the
         bytes that reached the file and the error that stopped it, if any."""
-        views = [memoryview(piece).cast("B") for piece in pieces if len(piece)]
-        done, at = 0, 0
+        views, done, at = list(pieces), 0, 0
         try:
             while at < len(views):
                 n = os.writev(self._fd, views[at:at + IOV_MAX])
@@ -201,8 +200,8 @@ class RecordWriter:
                 while at < len(views) and n >= len(views[at]):
                     n -= len(views[at])
                     at += 1
-                if n:
-                    views[at] = views[at][n:]
+                if n:  # a short write stopped inside this piece: go on from its first byte not written
+                    views[at] = memoryview(views[at]).cast("B")[n:]
         except OSError as exc:
             return done, exc
         return done, None
