@@ -295,19 +295,15 @@ class Store:
         columns = np.concatenate([info.layer_map for info in infos])
         layer_ns = np.concatenate([m.layer_ns for m in messages], axis=1)
         rows = np.repeat(np.array([self._row[info.rank] for info in infos], np.int64), widths)
-        if len({info.rank for info in infos}) == len(infos):  # each rank once: no cell twice, a plain sum
-            cells = rows * self.total_compute_ns.shape[1] + columns
-            self.total_compute_ns.reshape(-1)[cells] += layer_ns[0]
-            self.total_exchange_ns.reshape(-1)[cells] += layer_ns[1]
-        else:
-            np.add.at(self.total_compute_ns, (rows, columns), layer_ns[0])
-            np.add.at(self.total_exchange_ns, (rows, columns), layer_ns[1])
         cuts = np.searchsorted(np.repeat(slab_of, widths), np.arange(len(slabs) + 1))
-        for i, slab in enumerate(slabs.values()):
+        for i, slab in enumerate(slabs.values()):  # a rank is in a slab once (add_steps saw to it): no cell twice
             cell = slice(cuts[i], cuts[i + 1])
             flat = rows[cell] * slab.compute.shape[1] + columns[cell]
             slab.compute.reshape(-1)[flat] = layer_ns[0, cell] * NS
             slab.exchange.reshape(-1)[flat] = layer_ns[1, cell] * NS
+            flat = rows[cell] * self.total_compute_ns.shape[1] + columns[cell]
+            self.total_compute_ns.reshape(-1)[flat] += layer_ns[0, cell]
+            self.total_exchange_ns.reshape(-1)[flat] += layer_ns[1, cell]
         counts = np.array([m.exchanges.shape[1] for m in messages], np.int64)
         if not counts.any():
             return
@@ -320,10 +316,12 @@ class Store:
         base = np.array([m.header.wall_ns + self.offset_ns(info) - self.epoch_ns if m.exchanges.shape[1] else 0
                          for m, info in zip(messages, infos, strict=True)], np.int64)[owner]
         ops = table[wire.X_OP]
-        recv = np.flatnonzero(ops == wire.Op.RECV)
+        recv: np.ndarray | slice = np.flatnonzero(ops == wire.Op.RECV)
         coll = np.flatnonzero(_IS_COLLECTIVE[ops])
+        if len(recv) == len(ops):  # receives only (the usual table): no selection to copy
+            recv = slice(None)
         picked = table[:, recv]
-        out = np.empty((8, len(recv)))
+        out = np.empty((8, picked.shape[1]))
         out[0], out[1], out[2], out[3] = step[recv], layer[recv], picked[wire.X_PEER], rank[recv]
         out[4] = picked[wire.X_NBYTES]
         out[5] = (base[recv] + picked[wire.X_START]) * NS
