@@ -310,33 +310,44 @@ def encode_checks(sender: int, seq: int, wall_ns: int, *, period_s: float, budge
 
 def encode_batch(sender: int, seq: int, wall_ns: int, messages: list[list[bytes]]) -> list[bytes]:
     """Several messages (each with its own header: sender and sequence number intact) as one, so that a node
-    daemon sends one message where its ranks sent many. Frame 1 holds each message's frame count."""
-    counts = bytes(len(frames) for frames in messages)
-    size = sum(len(frame) for frames in messages for frame in frames)
-    head = HEADER.pack(MAGIC, BATCH_VERSION, Kind.BATCH, sender, seq, wall_ns, len(messages), size)
-    return [head, counts, *(frame for frames in messages for frame in frames)]
+    daemon sends one message where its ranks sent many: four frames whatever the count, since a receiver
+    pays per frame. Frame 1: each message's frame count; frame 2: each frame's length; frame 3: the frames."""
+    frames = [frame for message in messages for frame in message]
+    body = b"".join(frames)
+    head = HEADER.pack(MAGIC, BATCH_VERSION, Kind.BATCH, sender, seq, wall_ns, len(messages), len(body))
+    lengths = np.array([len(frame) for frame in frames], dtype="<u4").tobytes()
+    return [head, bytes(len(message) for message in messages), lengths, body]
 
 
-def unpack_batch(frames: list[bytes] | list[memoryview]) -> list[list[bytes]] | list[list[memoryview]]:
-    """The messages of a BATCH, each left for ``decode`` to judge as if it came alone. A batch that is not
-    exactly what it declares (torn, lying counts, beyond the caps) raises ``WireError`` and is refused whole."""
+def unpack_batch(frames: list[bytes] | list[memoryview]) -> list[list[memoryview]]:
+    """The messages of a BATCH (views into its last frame), each left for ``decode`` to judge as if it came
+    alone. A batch that is not exactly what it declares (torn, lying counts or lengths, beyond the caps)
+    raises ``WireError`` and is refused whole."""
     header = decode_header(frames[0]) if frames else None
-    if header is None or header.kind is not Kind.BATCH or len(frames) < 2:
+    if header is None or header.kind is not Kind.BATCH:
         raise WireError("bad-batch", "not a batch")
     if header.count_a > MAX_BATCH_MESSAGES or header.count_b > MAX_BATCH_BYTES:
         raise WireError("oversize-batch", f"{header.count_a} messages, {header.count_b} bytes")
-    counts = bytes(frames[1])
+    if len(frames) != 4:
+        raise WireError("bad-batch", f"{len(frames)} frames, a batch has 4")
+    counts, lengths, body = bytes(frames[1]), frames[2], memoryview(frames[3])
     if len(counts) != header.count_a or not header.count_a:
         raise WireError("bad-batch", f"{len(counts)} frame counts for {header.count_a} messages")
     if min(counts) < 1 or max(counts) > MAX_BATCH_PARTS:
         raise WireError("bad-batch", "a message of no frames or too many")
-    if sum(counts) != len(frames) - 2:
-        raise WireError("bad-batch", f"counts say {sum(counts)} frames, the batch has {len(frames) - 2}")
-    if sum(map(len, frames[2:])) != header.count_b:
-        raise WireError("bad-batch", f"declared {header.count_b} bytes")
-    out, at = [], 2
+    if len(lengths) != 4 * sum(counts):
+        raise WireError("bad-batch", f"{len(lengths) // 4} frame lengths for {sum(counts)} frames")
+    ends = np.cumsum(np.frombuffer(lengths, dtype="<u4"), dtype=np.int64).tolist()
+    if len(body) != header.count_b or (ends[-1] if ends else 0) != len(body):
+        raise WireError("bad-batch", f"frames of {ends[-1] if ends else 0} bytes, body {len(body)}, "
+                                     f"declared {header.count_b}")
+    out, at, start = [], 0, 0
     for count in counts:
-        out.append(list(frames[at:at + count]))
+        message = []
+        for end in ends[at:at + count]:
+            message.append(body[start:end])
+            start = end
+        out.append(message)
         at += count
     return out
 

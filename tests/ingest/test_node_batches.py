@@ -99,6 +99,10 @@ def _spoilt(how: str) -> list[bytes]:
         return batch[:-1]
     if how == "lying counts":
         return [batch[0], bytes([4, 5]), *batch[2:]]
+    if how == "lying lengths":
+        lengths = np.frombuffer(batch[2], "<u4").copy()
+        lengths[0] += 1
+        return [batch[0], batch[1], lengths.tobytes(), batch[3]]
     if how == "lying bytes":
         head[7] += 1
     elif how == "too many messages":
@@ -112,6 +116,7 @@ def _spoilt(how: str) -> list[bytes]:
 
 
 REFUSALS = {"truncated": "bad-batch", "lying counts": "bad-batch", "lying bytes": "bad-batch",
+            "lying lengths": "bad-batch",
             "too many messages": "oversize-batch", "too many bytes": "oversize-batch", "no messages": "bad-batch"}
 
 
@@ -140,9 +145,9 @@ def test_a_malformed_batch_is_refused_whole_and_costs_nothing_already_received(
 
 def test_a_batch_inside_a_batch_is_refused_as_a_message() -> None:
     inner = wire.encode_batch(9, 0, 0, [_message(1, 0, -1)])
-    assert len(wire.unpack_batch(wire.encode_batch(9, 1, 0, [inner[:4]]))) == 1
+    assert len(wire.unpack_batch(wire.encode_batch(9, 1, 0, [inner]))) == 1
     ingest = Ingest()
-    ingest.feed_many([(0, inner[:4])])
+    ingest.feed_many([(0, inner)])
     assert dict(ingest.ledger.bad) == {"nested-batch": 1}
     assert wire.unpack_batch(wire.encode_batch(9, 2, 0, [_message(1, 0, -1), _message(1, 1, 0)])) == \
         [_message(1, 0, -1), _message(1, 1, 0)]
