@@ -187,7 +187,7 @@ class Ingest:
             return [m for at in range(0, len(records), FEED_CHUNK) for m in self.feed_many(records[at:at + FEED_CHUNK])]
         batch = wire.decode_steps([frames for _, frames in records])
         out: list[wire.Message | None] = []
-        run: list[tuple[int, wire.Step, int]] = []  # (index in out, step, received_ns) held for the store
+        run: list[tuple[wire.Step, int]] = []  # accepted steps (and when received) held for the store
         newest = self.store.last_step
         for i, (received_ns, frames) in enumerate(records):
             step = batch.steps[i]
@@ -217,15 +217,15 @@ class Ingest:
             self.ledger.senders[header.sender].dropped_at_sender = step.dropped_total
             if self.store.step_rank(step) is not None:
                 newest = max(newest, step.step)
-            run.append((i, step, received_ns))
+            run.append((step, received_ns))
         self._store_run(run)
         return out
 
-    def _store_run(self, run: list[tuple[int, wire.Step, int]]) -> None:
+    def _store_run(self, run: list[tuple[wire.Step, int]]) -> None:
         """Hand a run of accepted steps to the store at once, and count them as ``feed`` would."""
         if not run:
             return
-        for stored in self.store.add_steps([(step, received_ns) for _, step, received_ns in run]):
+        for stored in self.store.add_steps(run):
             if stored:
                 self.steps += 1
             else:
