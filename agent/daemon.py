@@ -1,9 +1,10 @@
 """The node daemon: one uplink per node to the collector, plus the node's own figures.
 
-Local probes connect a DEALER to the daemon's ROUTER (an ipc endpoint). ZeroMQ's steerable proxy relays
-their frames to the collector through one DEALER, and replies (clock pongs) back by the routing envelope
-the ROUTER added. At the collector a relayed frame arrives as
-``[daemon id, probe id, b"", header, ...]``: everything up to the empty delimiter is envelope.
+Local probes connect a DEALER to the daemon's ROUTER (an ipc endpoint). The relay (``agent.uplink``) sends
+their messages to the collector through one DEALER, several at a time as one BATCH (each message's header
+intact), and replies (clock pongs) back by the routing envelope the ROUTER added. Messages that ask for an
+answer go alone, so at the collector a ping arrives as ``[daemon id, probe id, b"", header, ...]``:
+everything up to the empty delimiter is envelope.
 
 The daemon speaks for the node itself through a DEALER of its own, connected to its ROUTER over inproc, so
 its SCHEMA (rank -1) and NODE samples share the uplink. It follows the probe's rules: sequence numbers on
@@ -36,9 +37,11 @@ from agent.handshake import HandshakeWatch
 from agent.nodestats import NodeFigures, NodeSampler
 from agent.pairchecks import CheckConfig, CheckListener, PairChecker
 from agent.probe import CLOCK_EVERY_S, SCHEMA_EVERY
+from agent.uplink import FLUSH_S, BatchingRelay
 
 LINGER_MS = 500  # on stop, frames still queued for the collector get this long to leave
-UPLINK_HWM = 10_000  # frames the uplink holds while the collector is away; beyond, probes drop and count
+UPLINK_HWM = 1_250  # uplink messages (batches, ~8 of a node's messages each) held while the collector is away;
+# beyond, the relay stops reading the probes, whose own queues fill: they drop and count
 PUBLISH_HWM = 64
 PONG_WAIT_MS = 200  # how long the daemon waits for the collector's answer to a clock ping
 
@@ -88,6 +91,8 @@ class NodeDaemon:
         self._schema_dirty = True
         self._next_ping = 0.0
         self.pong_wait_ms = PONG_WAIT_MS
+        self.flush_s = FLUSH_S  # how long the relay holds the probes' messages to send them as one batch
+        self.relay: BatchingRelay | None = None  # while serving
         self._sampler = sampler or NodeSampler()
         self.checker: PairChecker | None = None
         self._check_options = checks
@@ -168,10 +173,10 @@ class NodeDaemon:
 
     # ------------------------------------------------------------------------------------ running
     def serve(self, stop: threading.Event) -> None:
-        """Relay and sample until ``stop`` is set; then stop the proxy and return."""
-        proxy = threading.Thread(target=zmq.proxy_steerable, name="watchtower-relay", daemon=True,
-                                 args=(self._frontend, self._backend, None, self._control))
-        proxy.start()
+        """Relay and sample until ``stop`` is set; then stop the relay and return."""
+        relay = self.relay = BatchingRelay(self._frontend, self._backend, self._control, flush_s=self.flush_s)
+        relaying = threading.Thread(target=relay.run, name="watchtower-relay", daemon=True)
+        relaying.start()
         if self.checker is not None:
             self.checker.start()
         try:
@@ -189,7 +194,7 @@ class NodeDaemon:
                 self.checker.listener.close()
                 self._send_results()
             self._steer.send(b"TERMINATE")
-            proxy.join()
+            relaying.join()
 
     def _tell_refusal(self) -> None:
         """Say once why the collector refuses the uplink (again only if the reason changes)."""

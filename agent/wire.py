@@ -18,7 +18,9 @@ from enum import IntEnum
 import numpy as np
 
 MAGIC = b"wtwr"
-VERSION = 1
+VERSION = 1  # what every kind but BATCH is stamped with, unchanged since version 1
+BATCH_VERSION = 2  # version 2 adds BATCH; a version-1 reader refuses a batch (bad-version) rather than misread it
+KNOWN_VERSIONS = (VERSION, BATCH_VERSION)
 
 HEADER = struct.Struct("<4sHHQQqII")  # magic, version, kind, sender, seq, wall_ns, count_a, count_b
 assert HEADER.size == 40
@@ -33,6 +35,9 @@ MAX_WORLD = 1 << 20
 MAX_CHECK_PEERS = 4096  # nodes a pair-check message may name
 MAX_CHECK_RESULTS = 4096  # pair-check results in one CHECK message
 MAX_ENDPOINT_BYTES = 256
+MAX_BATCH_MESSAGES = 1024  # messages in one BATCH
+MAX_BATCH_PARTS = 4  # frames of one message in a batch (the most any kind has)
+MAX_BATCH_BYTES = 16 << 20  # bytes of the messages in one BATCH
 
 
 class Kind(IntEnum):
@@ -47,6 +52,7 @@ class Kind(IntEnum):
     CHECK_HELLO = 7
     CHECK_PEERS = 8
     CHECK = 9
+    BATCH = 10
 
 
 class Op(IntEnum):
@@ -302,6 +308,50 @@ def encode_checks(sender: int, seq: int, wall_ns: int, *, period_s: float, budge
     ]
 
 
+def encode_batch(sender: int, seq: int, wall_ns: int, messages: list[list[bytes]]) -> list[bytes]:
+    """Several messages (each with its own header: sender and sequence number intact) as one, so that a node
+    daemon sends one message where its ranks sent many: four frames whatever the count, since a receiver
+    pays per frame. Frame 1: each message's frame count; frame 2: each frame's length; frame 3: the frames."""
+    frames = [frame for message in messages for frame in message]
+    body = b"".join(frames)
+    head = HEADER.pack(MAGIC, BATCH_VERSION, Kind.BATCH, sender, seq, wall_ns, len(messages), len(body))
+    lengths = np.array([len(frame) for frame in frames], dtype="<u4").tobytes()
+    return [head, bytes(len(message) for message in messages), lengths, body]
+
+
+def unpack_batch(frames: list[bytes] | list[memoryview]) -> list[list[memoryview]]:
+    """The messages of a BATCH (views into its last frame), each left for ``decode`` to judge as if it came
+    alone. A batch that is not exactly what it declares (torn, lying counts or lengths, beyond the caps)
+    raises ``WireError`` and is refused whole."""
+    header = decode_header(frames[0]) if frames else None
+    if header is None or header.kind is not Kind.BATCH:
+        raise WireError("bad-batch", "not a batch")
+    if header.count_a > MAX_BATCH_MESSAGES or header.count_b > MAX_BATCH_BYTES:
+        raise WireError("oversize-batch", f"{header.count_a} messages, {header.count_b} bytes")
+    if len(frames) != 4:
+        raise WireError("bad-batch", f"{len(frames)} frames, a batch has 4")
+    counts, lengths, body = bytes(frames[1]), frames[2], memoryview(frames[3])
+    if len(counts) != header.count_a or not header.count_a:
+        raise WireError("bad-batch", f"{len(counts)} frame counts for {header.count_a} messages")
+    if min(counts) < 1 or max(counts) > MAX_BATCH_PARTS:
+        raise WireError("bad-batch", "a message of no frames or too many")
+    if len(lengths) != 4 * sum(counts):
+        raise WireError("bad-batch", f"{len(lengths) // 4} frame lengths for {sum(counts)} frames")
+    ends = np.cumsum(np.frombuffer(lengths, dtype="<u4"), dtype=np.int64).tolist()
+    if len(body) != header.count_b or (ends[-1] if ends else 0) != len(body):
+        raise WireError("bad-batch", f"frames of {ends[-1] if ends else 0} bytes, body {len(body)}, "
+                                     f"declared {header.count_b}")
+    out, at, start = [], 0, 0
+    for count in counts:
+        message = []
+        for end in ends[at:at + count]:
+            message.append(body[start:end])
+            start = end
+        out.append(message)
+        at += count
+    return out
+
+
 def clock_offset(t0: int, t1: int, t2: int, t3: int) -> tuple[int, int]:
     """NTP's estimate from a two-way exchange: offset = ((t1-t0)+(t2-t3))/2, delay = (t3-t0)-(t2-t1)."""
     return ((t1 - t0) + (t2 - t3)) // 2, (t3 - t0) - (t2 - t1)
@@ -336,8 +386,8 @@ def decode_header(frame: bytes | memoryview) -> Header:
     magic, version, kind, sender, seq, wall_ns, count_a, count_b = HEADER.unpack(frame)
     if magic != MAGIC:
         raise WireError("bad-magic")
-    if version != VERSION:
-        raise WireError("bad-version", f"version {version}, this reader knows {VERSION}")
+    if version not in KNOWN_VERSIONS:
+        raise WireError("bad-version", f"version {version}, this reader knows {KNOWN_VERSIONS}")
     try:
         kind = Kind(kind)
     except ValueError:
@@ -357,6 +407,8 @@ def decode(frames: list[bytes] | list[memoryview]) -> Message:
     if not frames:
         raise WireError("empty")
     header = decode_header(frames[0])
+    if header.kind is Kind.BATCH:  # a collector unpacks batches first (``unpack_batch``); one inside is refused
+        raise WireError("nested-batch", "a BATCH where a message belongs")
     if len(frames) != _PARTS[header.kind]:
         raise WireError("bad-part-count", f"{header.kind.name} has {len(frames)} parts")
     meta_struct = _META.get(header.kind)
@@ -572,3 +624,112 @@ def _decode_checks(header: Header, meta: tuple, names_blob: bytes, table: bytes)
         if results[C_NBYTES].min() <= 0 or results[C_ELAPSED].min() <= 0:
             raise WireError("bad-check", "non-positive bytes or time")
     return CheckResults(header, period_s, budget, deferred, peers, results)
+
+
+# ---------------------------------------------------------------------------------------- batched decoding
+
+_HEADER_DTYPE = np.dtype([("magic", "S4"), ("version", "<u2"), ("kind", "<u2"), ("sender", "<u8"), ("seq", "<u8"),
+                          ("wall_ns", "<i8"), ("count_a", "<u4"), ("count_b", "<u4")])
+_STEP_META_DTYPE = np.dtype([("step", "<i8"), ("duration_ns", "<i8"), ("dropped_total", "<u8"),
+                             ("schema_id", "<u4"), ("reserved", "<u4")])
+assert _HEADER_DTYPE.itemsize == HEADER.size and _STEP_META_DTYPE.itemsize == STEP_META.size
+
+
+@dataclass(frozen=True, slots=True)
+class StepBatch:
+    """STEP messages validated together: ``steps[i]`` is message i's Step, or None when it is not a
+    plainly valid STEP (decode it alone with ``decode`` for the message or the exact reason). For the
+    valid ones the batch also holds their arrays as columns: ``layers`` int64 [2, ΣL] and ``table``
+    int64 [8, ΣE] in message order, with ``layer_start``/``table_start`` (length n + 1) marking each
+    message's slice, and the per-message maxima the plausibility checks need (-1 where empty)."""
+
+    steps: list[Step | None]
+    layers: np.ndarray
+    table: np.ndarray
+    layer_start: np.ndarray
+    table_start: np.ndarray
+    layer_max: np.ndarray
+    end_max: np.ndarray
+    nbytes_max: np.ndarray
+
+
+def decode_steps(messages: list[list[bytes]] | list[list[memoryview]]) -> StepBatch:
+    """Validate many STEP messages with a few numpy calls per column (what a collector drains at once).
+
+    Only what passes every check of ``decode`` is returned decoded; anything in doubt (another kind, a
+    wrong size, a failed check) is left as None for ``decode`` to judge alone, so the reasons a hostile
+    message is refused with stay exactly those of ``decode``."""
+    n = len(messages)
+    ok = np.array([len(m) == 4 and len(m[0]) == HEADER.size and len(m[1]) == STEP_META.size for m in messages],
+                  dtype=bool)
+    where = np.flatnonzero(ok)
+    heads = np.zeros(n, _HEADER_DTYPE)
+    metas = np.zeros(n, _STEP_META_DTYPE)
+    if where.size:
+        heads[where] = np.frombuffer(b"".join(messages[i][0] for i in where.tolist()), _HEADER_DTYPE)
+        metas[where] = np.frombuffer(b"".join(messages[i][1] for i in where.tolist()), _STEP_META_DTYPE)
+    n_layers, n_exchanges = heads["count_a"].astype(np.int64), heads["count_b"].astype(np.int64)
+    ok &= (heads["magic"] == MAGIC) & (heads["version"] == VERSION) & (heads["kind"] == Kind.STEP)
+    ok &= (n_layers <= MAX_LAYERS) & (n_exchanges <= MAX_EXCHANGES)
+    ok &= (metas["step"] >= 0) & (metas["duration_ns"] >= 0)
+    sizes = np.array([(len(m[2]), len(m[3])) if len(m) == 4 else (-1, -1) for m in messages], np.int64).reshape(n, 2)
+    ok &= (sizes[:, 0] == 2 * 8 * n_layers) & (sizes[:, 1] == len(EXCHANGE_COLUMNS) * 8 * n_exchanges)
+    n_layers, n_exchanges = np.where(ok, n_layers, 0), np.where(ok, n_exchanges, 0)
+    keep = np.flatnonzero(ok).tolist()
+    layer_start = np.concatenate([[0], np.cumsum(n_layers)])
+    table_start = np.concatenate([[0], np.cumsum(n_exchanges)])
+    flat_layers = np.frombuffer(b"".join(messages[i][2] for i in keep), _I64)
+    flat_table = np.frombuffer(b"".join(messages[i][3] for i in keep), _I64)
+    # each message's arrays are row-major [2, L] and [8, E]: gather them into columns across messages
+    layers = _columns(flat_layers, n_layers[ok], 2)
+    table = _columns(flat_table, n_exchanges[ok], len(EXCHANGE_COLUMNS))
+    owner_layer = np.repeat(np.arange(n), n_layers)
+    owner = np.repeat(np.arange(n), n_exchanges)
+    bad = np.zeros(n, dtype=bool)
+    if layers.size and layers.min() < 0:
+        bad[owner_layer[(layers < 0).any(axis=0)]] = True
+    if table.shape[1]:
+        ops = table[X_OP]
+        known = (ops >= 0) & (ops < len(_KNOWN_OP))
+        known[known] = _KNOWN_OP[ops[known]]
+        point = known.copy()
+        point[known] = ~_IS_COLLECTIVE[ops[known]]
+        peer = table[X_PEER]
+        wrong = ((table[X_LAYER] < 0) | (table[X_LAYER] >= n_layers[owner]) | (table[X_NBYTES] < 0)
+                 | (table[X_END] < table[X_START]) | (table[X_WAIT] > table[X_END] - table[X_START]) | ~known
+                 | (point & ((peer < 0) | (peer >= MAX_WORLD))))
+        bad[owner[wrong]] = True
+    ok &= ~bad
+    steps: list[Step | None] = [None] * n
+    heads_list, metas_list = heads.tolist(), metas.tolist()
+    starts, tstarts = layer_start.tolist(), table_start.tolist()
+    for i in np.flatnonzero(ok).tolist():
+        _, _, _, sender, seq, wall_ns, count_a, count_b = heads_list[i]
+        step, duration_ns, dropped_total, schema_id, _ = metas_list[i]
+        steps[i] = Step(Header(Kind.STEP, sender, seq, wall_ns, count_a, count_b), step, duration_ns,
+                        dropped_total, schema_id, layers[:, starts[i]:starts[i + 1]],
+                        table[:, tstarts[i]:tstarts[i + 1]])
+    return StepBatch(steps, layers, table, layer_start, table_start,
+                     _segment_max(np.maximum(layers[0], layers[1]), layer_start),
+                     _segment_max(table[X_END], table_start), _segment_max(table[X_NBYTES], table_start))
+
+
+def _columns(flat: np.ndarray, counts: np.ndarray, rows: int) -> np.ndarray:
+    """Row-major [rows, c_i] blocks laid end to end in ``flat`` -> one [rows, Σc_i] array of their columns."""
+    if not flat.size:
+        return np.zeros((rows, 0), _I64)
+    if (counts == counts[0]).all():  # blocks of one width (the usual drain): one transposing copy
+        return flat.reshape(len(counts), rows, int(counts[0])).transpose(1, 0, 2).reshape(rows, -1)
+    ends = np.cumsum(counts * rows).tolist()
+    return np.concatenate([flat[end - rows * c:end].reshape(rows, c) for end, c in zip(ends, counts.tolist(),
+                                                                                         strict=True)], axis=1)
+
+
+def _segment_max(values: np.ndarray, start: np.ndarray) -> np.ndarray:
+    """The maximum of each slice ``values[start[i]:start[i+1]]``, -1 for an empty slice."""
+    out = np.full(len(start) - 1, -1, dtype=np.int64)
+    lengths = np.diff(start)
+    full = np.flatnonzero(lengths)
+    if full.size:
+        out[full] = np.maximum.reduceat(values, start[full])
+    return out

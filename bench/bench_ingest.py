@@ -5,11 +5,15 @@
 A sender process pushes step messages (one rank's step: 2 x LAYERS int64 timings and an exchange table)
 from a DEALER socket to a ROUTER; the receiver either only takes them off the socket (raw ROUTER), or runs
 the collector: envelope split, validation and decoding, loss accounting and the store (ingest), and also
-appends them to a recording (ingest + record). A second raw baseline sends the same frames PUB -> SUB
-(no routing envelope, no flow control: the other transport pattern an agent could have used). Prints
-messages/s, MB/s, layer records/s and the ratio to raw ROUTER. ``--exchanges 192`` makes 16 KiB frames.
-``--profile`` also prints where the collector's time goes (cProfile of ``Ingest.feed`` on the same
-messages, no socket). Targets: >= 50% of raw at 16 KiB frames, >= 2 million layer records per second.
+appends them to a recording (ingest + record). Each collector row runs twice: one message at a time
+(``Ingest.feed`` per message, the recording's bytes joined into one ``write``: the path before batching)
+and batched (``Ingest.feed_many`` on each drain, one ``os.writev``). A last row sends the same messages
+as a node daemon does, NODE_RANKS to a BATCH message, into the batched collector. A second raw baseline
+sends the same frames PUB -> SUB (no routing envelope, no flow control). Prints rank messages/s, MB/s,
+layer records/s (one core: the collector is one thread) and the ratio to raw ROUTER. ``--exchanges 192``
+makes 16 KiB frames. ``--profile`` also prints where batched ingest spends its time (cProfile of
+``Ingest.feed_many`` on the same messages, no socket). Targets: >= 50% of raw at 16 KiB frames, >= 5
+million layer records per second on one core.
 """
 
 from __future__ import annotations
@@ -32,6 +36,15 @@ from watchtower.ingest import Ingest
 from watchtower.recording import Recorder
 
 RANKS = 64
+NODE_RANKS = 8  # ranks per node daemon: messages in one BATCH
+DRAIN = 512  # messages ingested at once by the profile
+
+
+class OneByOne(Ingest):
+    """The path before batching: every message decoded, checked and stored on its own."""
+
+    def feed_many(self, records: list) -> list:  # type: ignore[override]
+        return [self.feed(t, frames) for t, frames in records]
 
 
 def messages(layers: int, exchanges: int, count: int) -> list[list[bytes]]:
@@ -56,8 +69,18 @@ def messages(layers: int, exchanges: int, count: int) -> list[list[bytes]]:
     return out
 
 
-def send(endpoint: str, layers: int, exchanges: int, count: int, ready: mp.Event) -> None:  # type: ignore[type-arg]
+def node_batches(batch: list[list[bytes]]) -> list[list[bytes]]:
+    """The messages as node daemons send them: schemas alone, then NODE_RANKS steps to a BATCH."""
+    steps = [frames[1:] for frames in batch[RANKS:]]
+    grouped = [[b"", *wire.encode_batch(0, i, 0, steps[i:i + NODE_RANKS])] for i in range(0, len(steps), NODE_RANKS)]
+    return batch[:RANKS] + grouped
+
+
+def send(endpoint: str, layers: int, exchanges: int, count: int, ready: mp.Event,  # type: ignore[type-arg]
+         batched: bool = False) -> None:
     batch = messages(layers, exchanges, count)
+    if batched:
+        batch = node_batches(batch)
     ctx = zmq.Context()
     sock = ctx.socket(zmq.DEALER)
     sock.setsockopt(zmq.SNDHWM, 0)
@@ -118,12 +141,12 @@ def measure_pubsub(layers: int, exchanges: int, count: int) -> float:
 
 def profile(layers: int, exchanges: int, count: int) -> None:
     """Where ingest spends its time, per function, on the same messages without a socket."""
-    batch = [frames[1:] for frames in messages(layers, exchanges, count)]
+    batch = [(0, frames[1:]) for frames in messages(layers, exchanges, count)]
     ingest = Ingest()
     profiler = cProfile.Profile()
     profiler.enable()
-    for frames in batch:
-        ingest.feed(0, frames)
+    for at in range(0, len(batch), DRAIN):
+        ingest.feed_many(batch[at:at + DRAIN])
     profiler.disable()
     pstats.Stats(profiler).sort_stats("tottime").print_stats(12)
 
@@ -134,10 +157,14 @@ def measure(kind: str, layers: int, exchanges: int, count: int) -> tuple[float, 
     total = count + RANKS
     ready = mp.Event()
     with tempfile.TemporaryDirectory() as folder:
-        recorder = Recorder(Path(folder) / "bench.wtrace") if kind == "ingest + record" else None
-        ingest = Ingest()
+        recorder = Recorder(Path(folder) / "bench.wtrace") if "record" in kind else None
+        one_by_one = kind.endswith("one by one")
+        if recorder is not None and one_by_one:
+            recorder._fd = None  # the recording's bytes joined and written with one write, as before writev
+        ingest = OneByOne() if one_by_one else Ingest()
         collector = Collector(f"tcp://127.0.0.1:{_port()}", ingest, recorder, context=ctx)
-        sender = mp.Process(target=send, args=(collector.bound, layers, exchanges, count, ready))
+        sender = mp.Process(target=send, args=(collector.bound, layers, exchanges, count, ready,
+                                               kind.startswith("node")))
         sender.start()
         received = nbytes = 0
         ready.set()
@@ -150,10 +177,11 @@ def measure(kind: str, layers: int, exchanges: int, count: int) -> tuple[float, 
                 received += 1
                 nbytes += sum(len(f) for f in frames)
         else:
+            while not collector.socket.poll(1000):
+                pass
+            start = time.perf_counter()  # from the first message on the socket, as for raw (not after a drain)
             while received < total:
-                got = collector.drain(1000)
-                start = start or time.perf_counter()
-                received += got
+                received += collector.drain(1000)
             nbytes = -1
         elapsed = time.perf_counter() - (start or time.perf_counter())
         sender.join()
@@ -183,8 +211,9 @@ def main() -> None:
     print(f"step message: {size / 1024:.1f} KiB ({args.layers} layers, {args.exchanges} exchanges), "
           f"{args.messages} messages from one sender process")
     raw_s = None
-    print(f"{'receiver':18s} {'msg/s':>10s} {'MB/s':>8s} {'layer rec/s':>12s} {'vs raw':>7s}")
-    for kind in ("raw", "raw PUB/SUB", "ingest", "ingest + record"):
+    print(f"{'receiver':34s} {'msg/s':>10s} {'MB/s':>8s} {'layer rec/s':>12s} {'vs raw':>7s}")
+    for kind in ("raw", "raw PUB/SUB", "ingest, one by one", "ingest, batched", "ingest + record, one by one",
+                 "ingest + record, batched", f"node batches of {NODE_RANKS}: ingest + record"):
         if kind == "raw PUB/SUB":
             elapsed = measure_pubsub(args.layers, args.exchanges, args.messages)
         else:
@@ -192,7 +221,7 @@ def main() -> None:
         raw_s = raw_s or elapsed
         rate = args.messages / elapsed
         label = "raw ROUTER/DEALER" if kind == "raw" else kind
-        print(f"{label:18s} {rate:10.0f} {rate * size / 1e6:8.0f} {rate * args.layers:12.0f} "
+        print(f"{label:34s} {rate:10.0f} {rate * size / 1e6:8.0f} {rate * args.layers:12.0f} "
               f"{raw_s / elapsed:7.0%}")
     if args.profile:
         profile(args.layers, args.exchanges, args.messages)

@@ -186,29 +186,43 @@ class Collector:
                 break
             received_ns = time.time_ns()
             envelope, frames = split_envelope(raw)
-            if self.ingest.has_foreign and frames and self.ingest.foreign(_sender(frames[0])):  # one job per file
-                self.ingest.ledger.reject("other-job")
-                continue
-            if not frames or not fits(frames) or (len(frames) == 1 and is_note(frames)):  # a tick or a note?
-                self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames)
-                                          else "oversize-message")
-                continue
-            batch.append((received_ns, frames))
-            if frames and wire.peek_kind(frames[0]) == wire.Kind.CLOCK_PING:
-                self._answer_ping(envelope, frames, received_ns)
-            elif frames and wire.peek_kind(frames[0]) == wire.Kind.CHECK_HELLO:
-                self._answer_hello(envelope, frames, received_ns)
+            if frames and wire.peek_kind(frames[0]) == wire.Kind.BATCH:  # a node daemon's: each message as if alone
+                try:
+                    inner = wire.unpack_batch(frames)
+                except wire.WireError as exc:  # refused whole; what came before it is already in the batch
+                    self.ingest.ledger.reject(exc.reason)
+                    continue
+                for message in inner:
+                    self._admit(batch, envelope, message, received_ns)
+            else:
+                self._admit(batch, envelope, frames, received_ns)
         if self.recorder is not None:
             self.recorder.write_many(batch)
         known = len(self.ingest.foreign_jobs)
-        for received_ns, frames in batch:
-            message = self.ingest.feed(received_ns, frames)
-            if self.on_message is not None:
+        messages = self.ingest.feed_many(batch)
+        if self.on_message is not None:
+            for (received_ns, frames), message in zip(batch, messages, strict=True):
                 self.on_message(received_ns, frames, message)
         if len(self.ingest.foreign_jobs) > known and self.on_foreign_job is not None:
             for job in list(self.ingest.foreign_jobs)[known:]:
                 self.on_foreign_job(job, self.ingest.store.job)
         return len(batch)
+
+    def _admit(self, batch: list[tuple[int, list[bytes]]], envelope: list[bytes], frames: list[bytes],
+               received_ns: int) -> None:
+        """Add one message to the drain's batch unless it is refused at the door, answering it if it asks."""
+        if self.ingest.has_foreign and frames and self.ingest.foreign(_sender(frames[0])):  # one job per file
+            self.ingest.ledger.reject("other-job")
+            return
+        if not frames or not fits(frames) or (len(frames) == 1 and is_note(frames)):  # a tick or a note?
+            self.ingest.ledger.reject("empty" if not frames else "bad-magic" if is_note(frames) else "oversize-message")
+            return
+        batch.append((received_ns, frames))
+        kind = wire.peek_kind(frames[0])
+        if kind == wire.Kind.CLOCK_PING:
+            self._answer_ping(envelope, frames, received_ns)
+        elif kind == wire.Kind.CHECK_HELLO:
+            self._answer_hello(envelope, frames, received_ns)
 
     def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:
         try:

@@ -6,8 +6,8 @@ The layout and the writer live in ``agent/records.py`` (a probe's spool uses the
     record := u32 body_len  u32 crc32(body)  body      body := i64 received_ns  u16 n_parts  (u32 len  part)*
     resume := a 32-byte marker a restarted writer appends, naming its own byte offset
 
-Each record is written with one ``write`` on an unbuffered file, so a crash of the writer loses at most
-the record being written. The reader streams records. At a torn, corrupt or implausible record it scans
+A drain's records are written with one ``os.writev`` on an unbuffered file, so a crash of the writer
+loses at most the records being written. The reader streams records. At a torn, corrupt or implausible record it scans
 forward for the next place where reading can safely go on: a resume marker that names its own offset (a
 collector killed mid-record and restarted leaves one), or a record whose length, frame layout and CRC-32
 all check out. Reading goes on there and the bytes stepped over are reported in ``Tail.skipped``; so

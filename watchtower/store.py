@@ -215,16 +215,23 @@ class Store:
                       period_s=max(p for p, _, _ in states), budget=max(b for _, b, _ in states),
                       deferred=sum(d for _, _, d in states))
 
-    def add_step(self, message: wire.Step, received_ns: int) -> bool:
-        """Fold one rank's step in. False when its sender's schema is unknown or does not match."""
+    def step_rank(self, message: wire.Step) -> RankInfo | None:
+        """The rank a step belongs to, or None when its sender's schema is unknown or does not match."""
         rank = self._sender_rank.get(message.header.sender)
         if rank is None:
-            self.unknown_sender_steps += 1
-            return False
+            return None
         info = self.ranks[rank]
         if message.schema_id != info.schema_id or message.layer_ns.shape[1] != len(info.layer_map):
+            return None
+        return info
+
+    def add_step(self, message: wire.Step, received_ns: int) -> bool:
+        """Fold one rank's step in. False when its sender's schema is unknown or does not match."""
+        info = self.step_rank(message)
+        if info is None:
             self.unknown_sender_steps += 1
             return False
+        rank = info.rank
         info.last_wall_ns = message.header.wall_ns
         info.last_step = max(info.last_step, message.step)
         info.last_heard_ns, info.step_s = received_ns, message.duration_ns * NS
@@ -247,6 +254,139 @@ class Store:
         if len(self._series_step) > SERIES_CAP:
             self._merge_old_series()
         return True
+
+    def add_steps(self, steps: list[tuple[wire.Step, int]]) -> list[bool]:
+        """Fold in a run of steps exactly as ``add_step`` one after another would (what a collector drains
+        at once): the bookkeeping in one loop, the arrays with a few numpy calls for the whole run. The
+        caller hands over runs with no schema or offset between them. Returns ``add_step``'s answer for each."""
+        if len({(self._sender_rank.get(m.header.sender), m.step) for m, _ in steps}) < len(steps) or \
+                len(self._series_step) + len({m.step for m, _ in steps}) > SERIES_CAP:
+            return [self.add_step(m, t) for m, t in steps]  # a rank's step twice, or the series merging: in turn
+        done: list[bool] = []
+        taken: list[tuple[wire.Step, RankInfo, _StepSlab]] = []
+        for message, received_ns in steps:
+            info = self.step_rank(message)
+            if info is None:
+                self.unknown_sender_steps += 1
+                done.append(False)
+                continue
+            info.last_wall_ns = message.header.wall_ns
+            info.last_step = max(info.last_step, message.step)
+            info.last_heard_ns, info.step_s = received_ns, message.duration_ns * NS
+            self.nodes[info.node].last_heard_ns = received_ns
+            slab = self._slab(message.step)
+            slab.duration[self._row[info.rank]] = message.duration_ns * NS
+            slab.reported += 1
+            if self.epoch_ns is None and message.exchanges.shape[1]:
+                self.epoch_ns = message.header.wall_ns
+            self.last_step = max(self.last_step, message.step)
+            self._series_step[message.step] = max(self._series_step.get(message.step, 0.0), message.duration_ns * NS)
+            taken.append((message, info, slab))
+            done.append(True)
+        if taken:
+            self._scatter_steps(taken)
+        return done
+
+    def _scatter_steps(self, taken: list[tuple[wire.Step, RankInfo, _StepSlab]]) -> None:
+        """The array part of ``add_steps``: layer times into their slabs and the run's totals, transfers and
+        collectives appended per slab in message order, the link series per (message, source node)."""
+        slabs = {id(slab): slab for _, _, slab in taken}
+        place = {key: i for i, key in enumerate(slabs)}
+        slab_of = np.array([place[id(slab)] for _, _, slab in taken], np.int64)
+        order = np.argsort(slab_of, kind="stable")  # each slab's messages together, in their order
+        arrival, taken = taken, [taken[i] for i in order.tolist()]
+        slab_of = slab_of[order]
+        messages = [m for m, _, _ in taken]
+        infos = [info for _, info, _ in taken]
+        widths = np.array([len(info.layer_map) for info in infos], np.int64)
+        columns = np.concatenate([info.layer_map for info in infos])
+        layer_ns = np.concatenate([m.layer_ns for m in messages], axis=1)
+        rows = np.repeat(np.array([self._row[info.rank] for info in infos], np.int64), widths)
+        cuts = np.searchsorted(np.repeat(slab_of, widths), np.arange(len(slabs) + 1))
+        for i, slab in enumerate(slabs.values()):  # a rank is in a slab once (add_steps saw to it): no cell twice
+            cell = slice(cuts[i], cuts[i + 1])
+            flat = rows[cell] * slab.compute.shape[1] + columns[cell]
+            slab.compute.reshape(-1)[flat] = layer_ns[0, cell] * NS
+            slab.exchange.reshape(-1)[flat] = layer_ns[1, cell] * NS
+            flat = rows[cell] * self.total_compute_ns.shape[1] + columns[cell]
+            self.total_compute_ns.reshape(-1)[flat] += layer_ns[0, cell]
+            self.total_exchange_ns.reshape(-1)[flat] += layer_ns[1, cell]
+        counts = np.array([m.exchanges.shape[1] for m in messages], np.int64)
+        if not counts.any():
+            return
+        table = np.concatenate([m.exchanges for m in messages], axis=1)
+        owner = np.repeat(np.arange(len(taken)), counts)
+        map_start = np.concatenate([[0], np.cumsum(widths)[:-1]])
+        layer = columns[map_start[owner] + table[wire.X_LAYER]]
+        step = np.array([m.step for m in messages], np.int64)[owner]
+        rank = np.array([info.rank for info in infos], np.int64)[owner]
+        base = np.array([m.header.wall_ns + self.offset_ns(info) - self.epoch_ns if m.exchanges.shape[1] else 0
+                         for m, info in zip(messages, infos, strict=True)], np.int64)[owner]
+        ops = table[wire.X_OP]
+        recv: np.ndarray | slice = np.flatnonzero(ops == wire.Op.RECV)
+        coll = np.flatnonzero(_IS_COLLECTIVE[ops])
+        if len(recv) == len(ops):  # receives only (the usual table): no selection to copy
+            recv = slice(None)
+        picked = table[:, recv]
+        out = np.empty((8, picked.shape[1]))
+        out[0], out[1], out[2], out[3] = step[recv], layer[recv], picked[wire.X_PEER], rank[recv]
+        out[4] = picked[wire.X_NBYTES]
+        out[5] = (base[recv] + picked[wire.X_START]) * NS
+        out[6] = (base[recv] + picked[wire.X_END]) * NS
+        wait = picked[wire.X_WAIT]
+        known = wait != wire.UNKNOWN_WAIT
+        out[7] = np.where(known, wait * NS, np.nan)
+        picked = table[:, coll]
+        collective = np.empty((7, len(coll)))
+        collective[0], collective[1], collective[2] = step[coll], layer[coll], rank[coll]
+        collective[3], collective[4], collective[5] = picked[wire.X_OP], picked[wire.X_GROUP], picked[wire.X_NBYTES]
+        collective[6] = (picked[wire.X_END] - picked[wire.X_START]) * NS
+        owner_recv = owner[recv]
+        for part, whose, kind in ((out, owner_recv, "transfers"), (collective, owner[coll], "collectives")):
+            if not part.shape[1]:
+                continue
+            cuts = np.searchsorted(slab_of[whose], np.arange(len(slabs) + 1))
+            for i, slab in enumerate(slabs.values()):
+                if cuts[i + 1] > cuts[i]:
+                    getattr(slab, kind).append(part[:, cuts[i]:cuts[i + 1]])
+        if out.shape[1]:
+            seconds = out[6] - out[5] - np.where(known, out[7], 0.0)
+            self._add_link_series_many(arrival, order[owner_recv], out, seconds)  # in arrival order, as in turn
+
+    def _add_link_series_many(self, taken: list[tuple[wire.Step, RankInfo, _StepSlab]], owner: np.ndarray,
+                              rows: np.ndarray, seconds: np.ndarray) -> None:
+        """``_add_link_series`` for many messages' received transfers at once (``owner``: the index into
+        ``taken`` of each), in the same order and with the same sums: a bin of ``np.bincount`` adds its
+        elements in turn, as one message's would."""
+        peers = rows[2].astype(np.int64)
+        known = peers < len(self._rank_node)
+        src = np.full(peers.shape, -1)
+        src[known] = self._rank_node[peers[known]]
+        node = np.array([info.node for _, info, _ in taken], np.int64)[owner]
+        keep = (src >= 0) & (src != node)
+        if not keep.any():
+            return
+        width = len(self.nodes) + 1
+        cell = owner[keep] * width + src[keep]  # (message, source node), ascending as the messages came
+        bins = len(taken) * width
+        keys = np.flatnonzero(np.bincount(cell, minlength=bins))
+        nbytes = rows[4][keep]
+        sums_bytes = np.bincount(cell, nbytes, minlength=bins)[keys]
+        sums_seconds = np.bincount(cell, seconds[keep], minlength=bins)[keys]
+        peak = np.zeros(bins)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            np.maximum.at(peak, cell, np.where(seconds[keep] > 0, nbytes / seconds[keep], 0.0))
+        peak = peak[keys]
+        for key, b, t, fastest in zip(keys.tolist(), sums_bytes.tolist(), sums_seconds.tolist(), peak.tolist(),
+                                      strict=True):
+            i, source = divmod(key, width)
+            message, info, _ = taken[i]
+            pair = (source, info.node)
+            self._pairs.setdefault(pair, len(self._pairs))
+            cell = self._series_links.setdefault(message.step, {}).setdefault(pair, [0.0, 0.0, 0.0])
+            cell[0] += b
+            cell[1] += t
+            cell[2] = max(cell[2], fastest)
 
     def _add_exchanges(self, slab: _StepSlab, info: RankInfo, message: wire.Step) -> None:
         table = message.exchanges

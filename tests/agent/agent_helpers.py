@@ -24,6 +24,7 @@ class FakeCollector:
             self.sock.bind(endpoint)
         self.endpoint = endpoint
         self.messages: list[tuple[list[bytes], wire.Message]] = []
+        self.batches = 0
 
     def receive_until(self, done: Callable[[list[wire.Message]], bool],
                       deadline_s: float = DEADLINE_S) -> list[wire.Message]:
@@ -35,7 +36,12 @@ class FakeCollector:
             if self.sock.poll(int(remaining * 1000) + 1):
                 frames = self.sock.recv_multipart()
                 envelope = frames[: frames.index(b"") + 1]  # everything up to the empty delimiter
-                self.messages.append((envelope, wire.decode(frames[len(envelope):])))
+                frames = frames[len(envelope):]
+                if wire.peek_kind(frames[0]) == wire.Kind.BATCH:  # a node daemon's: each message as if alone
+                    self.batches += 1
+                    self.messages.extend((envelope, wire.decode(inner)) for inner in wire.unpack_batch(frames))
+                else:
+                    self.messages.append((envelope, wire.decode(frames)))
         return [m for _, m in self.messages]
 
     def reply(self, envelope: list[bytes], frames: list[bytes]) -> None:
