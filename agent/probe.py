@@ -220,6 +220,7 @@ class Probe:
         self.sender = secrets.randbits(63) if sender is None else sender  # fixed only for reproducible output
         self.seq = 0
         self.dropped = 0
+        self._signed_off = False
         self.abandoned_steps = 0  # device timing: steps whose markers the device never passed (see end_step)
         self.step_index = 0
         self.offset_ns: int | None = None
@@ -633,11 +634,25 @@ class Probe:
         tells its user, since no frame of its ever arrives."""
         return None if self._handshake is None else self._handshake.refused()
 
-    def close(self, drain_s: float = 2.0) -> None:
+    def sign_off(self) -> bool:
+        """Tell the collector this rank has finished (``close`` does): a rank that signs off is shown as
+        finished, never as silent, and its final drop count makes loss at the sender exact. Once only."""
+        if self._signed_off:
+            return True
+        self._signed_off = True
+        last = self.step_index - 1 - len(self._pending)  # the newest step published (device steps may be left)
+        return self._send(wire.encode_sign_off(self.sender, self.seq, self.wall_clock(), last_step=max(-1, last),
+                                               dropped_total=self.dropped))
+
+    def close(self, drain_s: float = 2.0, *, finished: bool = True) -> None:
         """Close the socket and spool; with device timing, first publish what the device finishes within
-        ``drain_s`` seconds."""
+        ``drain_s`` seconds. ``finished``: the training loop ended as it should, so the rank signs off; a
+        loop that failed passes False (``with Probe(...)`` does on an exception) and the rank goes silent,
+        which is what the console must then show."""
         if self._pending:
             self.drain(drain_s)
+        if finished and (self._socket is not None or self._spool is not None):
+            self.sign_off()
         if self._socket is not None:
             if self._handshake is not None:
                 self._handshake.refused()  # the last outcome, kept for after the close
@@ -649,5 +664,5 @@ class Probe:
     def __enter__(self) -> Probe:
         return self
 
-    def __exit__(self, *exc: object) -> None:
-        self.close()
+    def __exit__(self, exc_type: type[BaseException] | None, *exc: object) -> None:
+        self.close(finished=exc_type is None)

@@ -18,9 +18,9 @@ from enum import IntEnum
 import numpy as np
 
 MAGIC = b"wtwr"
-VERSION = 1  # what every kind but BATCH is stamped with, unchanged since version 1
-BATCH_VERSION = 2  # version 2 adds BATCH; a version-1 reader refuses a batch (bad-version) rather than misread it
-KNOWN_VERSIONS = (VERSION, BATCH_VERSION)
+VERSION = 1  # what every kind but BATCH and SIGN_OFF is stamped with, unchanged since version 1
+VERSION_2 = 2  # adds BATCH and SIGN_OFF; a version-1 reader refuses them (bad-version) rather than misread them
+KNOWN_VERSIONS = (VERSION, VERSION_2)
 
 HEADER = struct.Struct("<4sHHQQqII")  # magic, version, kind, sender, seq, wall_ns, count_a, count_b
 assert HEADER.size == 40
@@ -53,6 +53,7 @@ class Kind(IntEnum):
     CHECK_PEERS = 8
     CHECK = 9
     BATCH = 10
+    SIGN_OFF = 11
 
 
 class Op(IntEnum):
@@ -84,6 +85,7 @@ NODE_META = struct.Struct("<ddd")  # cpu_percent, memory_percent, interval_s
 PING_META = struct.Struct("<q")  # t0
 PONG_META = struct.Struct("<qqq")  # t0, t1, t2
 OFFSET_META = struct.Struct("<qq")  # offset_ns, round_trip_ns
+SIGN_OFF_META = struct.Struct("<qQ")  # last_step (-1: none), dropped_total
 NIC_COLUMNS = ("sent_Bps", "recv_Bps", "sent_total", "recv_total")
 CHECK_META = struct.Struct("<ddQQ")  # period_s, budget (share of nominal), deferred_total, reserved
 # Pair-check result rows (int64 [CHECK_COLUMNS, K]).
@@ -173,6 +175,16 @@ class ClockOffset:
 
 
 @dataclass(frozen=True, slots=True)
+class SignOff:
+    """A rank's last word when its training loop closes the probe: it has finished, not gone silent. Its
+    ``dropped_total`` is the final count, so loss at the sender is exact even when the last frame was no step."""
+
+    header: Header
+    last_step: int
+    dropped_total: int
+
+
+@dataclass(frozen=True, slots=True)
 class CheckHello:
     """A node daemon running pair checks says where other daemons reach its check listener."""
 
@@ -207,7 +219,8 @@ class CheckResults:
     results: np.ndarray  # int64 [4, K], rows per CHECK_COLUMNS
 
 
-Message = Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset | CheckHello | CheckPeers | CheckResults
+Message = (Schema | Step | NodeSample | ClockPing | ClockPong | ClockOffset | CheckHello | CheckPeers | CheckResults
+           | SignOff)
 
 
 def check_name(name: str, what: str = "name") -> str:
@@ -281,6 +294,11 @@ def encode_offset(sender: int, seq: int, wall_ns: int, offset_ns: int, round_tri
     return [_header(Kind.CLOCK_OFFSET, sender, seq, wall_ns), OFFSET_META.pack(offset_ns, round_trip_ns)]
 
 
+def encode_sign_off(sender: int, seq: int, wall_ns: int, *, last_step: int, dropped_total: int) -> list[bytes]:
+    return [HEADER.pack(MAGIC, VERSION_2, Kind.SIGN_OFF, sender, seq, wall_ns, 0, 0),
+            SIGN_OFF_META.pack(last_step, dropped_total)]
+
+
 def _text(body: object) -> bytes:
     return json.dumps(body, ensure_ascii=False, separators=(",", ":")).encode()
 
@@ -314,7 +332,7 @@ def encode_batch(sender: int, seq: int, wall_ns: int, messages: list[list[bytes]
     pays per frame. Frame 1: each message's frame count; frame 2: each frame's length; frame 3: the frames."""
     frames = [frame for message in messages for frame in message]
     body = b"".join(frames)
-    head = HEADER.pack(MAGIC, BATCH_VERSION, Kind.BATCH, sender, seq, wall_ns, len(messages), len(body))
+    head = HEADER.pack(MAGIC, VERSION_2, Kind.BATCH, sender, seq, wall_ns, len(messages), len(body))
     lengths = np.array([len(frame) for frame in frames], dtype="<u4").tobytes()
     return [head, bytes(len(message) for message in messages), lengths, body]
 
@@ -369,6 +387,7 @@ _PARTS = {
     Kind.CHECK_HELLO: 2,
     Kind.CHECK_PEERS: 2,
     Kind.CHECK: 4,
+    Kind.SIGN_OFF: 2,
 }
 _META = {
     Kind.STEP: STEP_META,
@@ -377,6 +396,7 @@ _META = {
     Kind.CLOCK_PONG: PONG_META,
     Kind.CLOCK_OFFSET: OFFSET_META,
     Kind.CHECK: CHECK_META,
+    Kind.SIGN_OFF: SIGN_OFF_META,
 }
 
 
@@ -433,6 +453,10 @@ def decode(frames: list[bytes] | list[memoryview]) -> Message:
         return _decode_check_peers(header, frames[1])
     if header.kind is Kind.CHECK:
         return _decode_checks(header, meta, frames[2], frames[3])
+    if header.kind is Kind.SIGN_OFF:
+        if meta[0] < -1:
+            raise WireError("bad-sign-off", f"last step {meta[0]}")
+        return SignOff(header, *meta)
     return ClockOffset(header, *meta)
 
 

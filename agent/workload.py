@@ -476,7 +476,7 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
         ctx = zmq.Context()
         cleanup.callback(ctx.term)  # waits up to the probe's linger for queued frames to reach the collector
         probe = _open_probe(config, ctx, names, "halo-ring")
-        cleanup.callback(probe.close)
+        cleanup.callback(probe.close, finished=False)  # signed off below only when every step ran
         ring = HaloRing(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
                         max(sizes), config.connect_timeout_s)
         cleanup.callback(ring.close)
@@ -488,6 +488,7 @@ def run_workload(config: WorkloadConfig, listener: socket.socket | None = None) 
                     for halo in ring.exchange(probe, step, layer, name, slab.halo(sizes[layer])):
                         slab.absorb(halo)
             probe.end_step()
+        probe.sign_off()
         refused = probe.refused()
     return WorkloadResult(config.steps, probe.dropped, probe.sent_frames, refused)
 
@@ -518,7 +519,7 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
         ctx = zmq.Context()
         cleanup.callback(ctx.term)
         probe = _open_probe(config, ctx, [*names, GRAD_LAYER], "ring-allreduce")
-        cleanup.callback(probe.close)
+        cleanup.callback(probe.close, finished=False)  # signed off below only when every step ran
         ring = RingAllreduce(connect_ring(config.rank, config.peers, config.connect_timeout_s, listener),
                              config.rank, world, config.connect_timeout_s)
         cleanup.callback(ring.close)
@@ -534,5 +535,6 @@ def _run_collective(config: WorkloadConfig, listener: socket.socket | None) -> W
                 ring.allreduce(grad, step)
             slab.x[0] = grad[: SLAB] / world  # the next step depends on everyone's gradient
             probe.end_step()
+        probe.sign_off()
         refused = probe.refused()
     return WorkloadResult(config.steps, probe.dropped, probe.sent_frames, refused)

@@ -85,6 +85,10 @@ class Ingest:
                 self.ledger.reject("unknown-schema")
         elif isinstance(message, wire.ClockOffset):
             self.store.add_offset(message)
+        elif isinstance(message, wire.SignOff):
+            self.ledger.senders[header.sender].dropped_at_sender = message.dropped_total
+            if not self.store.add_sign_off(message, received_ns):
+                self.ledger.reject("unknown-schema")
         elif isinstance(message, wire.CheckResults) and not self.store.add_checks(message, received_ns):
             self.ledger.reject("unknown-schema")
         return message

@@ -190,6 +190,8 @@ def finish_snapshot(parts: SnapshotParts, figures: dict[str, Any] | None = None)
     snapshot.update(facts)
     if liveness["stalled"]:
         snapshot["eta_s"] = None
+    elif liveness["finished"]:
+        snapshot["eta_s"] = 0.0  # nothing left to run (the hours at stake are the run's, not the future's)
     snapshot["alerts"] = snapshot["alerts"] + _silence_alerts(liveness, facts["job"])
     return snapshot
 
@@ -217,16 +219,20 @@ def _liveness(ingest: Ingest, now_ns: int) -> dict[str, Any]:
             continue
         age = max(0.0, (now_ns - info.last_heard_ns) * 1e-9)
         limit = max(SILENT_STEPS * info.step_s, SILENT_MIN_S)
+        finished = bool(info.finished_ns)
         ranks.append({"rank": rank, "node": store.nodes[info.node].name, "age_s": age, "last_step": info.last_step,
-                      "step_s": info.step_s, "silent_after_s": limit, "silent": age > limit})
+                      "step_s": info.step_s, "silent_after_s": limit, "silent": age > limit and not finished,
+                      "finished": finished})
     newest = max((info.last_heard_ns for info in store.ranks.values()), default=0)
     silent = [r["rank"] for r in ranks if r["silent"]]
+    running = [r for r in ranks if not r["finished"]]
     return {
         "now_ns": now_ns,
         "age_s": None if not newest else max(0.0, (now_ns - newest) * 1e-9),
         "ranks": ranks,
         "silent_ranks": silent,
-        "stalled": bool(ranks) and len(silent) == len(ranks),
+        "finished": bool(ranks) and not running,  # every rank signed off: the job ended, nothing is stalled
+        "stalled": bool(running) and len(silent) == len(running),
         "stopped_early": [{"rank": r["rank"], "node": r["node"], "last_step": r["last_step"]}
                           for r in ranks if r["silent"] and r["last_step"] < store.last_step],
     }
@@ -235,7 +241,7 @@ def _liveness(ingest: Ingest, now_ns: int) -> dict[str, Any]:
 def _rate(recent_s: float | None, liveness: dict[str, Any]) -> float | None:
     """Steps per second: 0 once stalled; decaying as 1 / (time since the newest step) once that exceeds
     two recent step times, so a rate never freezes at its last value while nobody speaks."""
-    if liveness["stalled"]:
+    if liveness["stalled"] or liveness.get("finished"):
         return 0.0
     if not recent_s:
         return None

@@ -36,6 +36,8 @@ class RankInfo:
     last_step: int = -1
     last_heard_ns: int = 0  # collector clock when its newest step arrived
     step_s: float = 0.0  # its newest step's duration: what "silent for a few of its own steps" is measured in
+    finished_ns: int = 0  # collector clock when it signed off (its loop closed the probe); 0: still running
+    finished_step: int = -1  # the newest step it said it published when it signed off
 
 
 @dataclass
@@ -150,6 +152,16 @@ class Store:
             self.total_exchange_ns = _grown(self.total_exchange_ns, shape, 0)
 
     # ------------------------------------------------------------------------------ messages
+    def add_sign_off(self, message: wire.SignOff, received_ns: int) -> bool:
+        """A rank has finished: from now on it is shown as finished, not silent. False if its sender is
+        no known rank."""
+        rank = self._sender_rank.get(message.header.sender)
+        if rank is None:
+            return False
+        info = self.ranks[rank]
+        info.finished_ns, info.finished_step = received_ns, message.last_step
+        return True
+
     def add_offset(self, message: wire.ClockOffset) -> None:
         sender = message.header.sender
         rank = self._sender_rank.get(sender)

@@ -70,7 +70,8 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
         prose.append("note: " + _note(s))
     prose += [
         f"job {visible(s['job'])}: {s['ranks']} ranks on {len(s['nodes'])} nodes, {s['steps']} steps "
-        f"(window {s['window']['first_step']}..{s['window']['last_step']}), step {seconds(s['window']['step_s'])}",
+        f"(window {s['window']['first_step']}..{s['window']['last_step']}), step {seconds(s['window']['step_s'])}"
+        + ("; finished (every rank signed off)" if s.get("liveness", {}).get("finished") else ""),
         f"parallel efficiency {percent(eff['parallel'])} = load balance {percent(eff['load_balance'])} × "
         f"communication {percent(eff['communication'])} (serialisation {percent(eff['serialisation'])}, "
         f"transfer {percent(eff['transfer'])})",

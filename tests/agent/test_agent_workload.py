@@ -210,15 +210,17 @@ def test_cli_world_one_runs_to_completion(collector: FakeCollector) -> None:
 
 def test_compute_ms_is_spent_per_layer_from_the_first_step_to_the_last() -> None:
     """``--compute-ms X`` means X ms of compute per layer in every step, as the probe measures it (±10 %,
-    the issue's bar). Medians over a step's layers, so one preemption by another process on a shared core
-    does not decide the check; the first and last steps are checked on their own because a count of
-    repetitions calibrated once drifted early in a run (0.6 ms measured for 5 ms)."""
+    the issue's bar). Each step's shortest layer: the loop runs to a deadline on the clock, so being
+    preempted by another process on a shared core can only lengthen a layer, and under load more than half
+    of a step's layers were (medians of 4.2 ms for 3 ms), while its shortest layer stayed within 1 %. The
+    first and last steps are checked on their own because a count of repetitions calibrated once drifted
+    early in a run (0.6 ms measured for 5 ms)."""
     compute_ms, steps, layers = 3.0, 12, 6
     listeners, peers = _listeners(1)
     config = WorkloadConfig(rank=0, peers=peers, collector=None, node="n0", steps=steps, layers=layers,
                             exchange_bytes=EXCHANGE_BYTES, compute_ms=compute_ms, connect_timeout_s=DEADLINE_S)
     frames = run_workload(config, listener=listeners[0]).frames
-    per_step = np.array([np.median(m.layer_ns[0]) for m in map(wire.decode, frames) if isinstance(m, wire.Step)])
+    per_step = np.array([np.min(m.layer_ns[0]) for m in map(wire.decode, frames) if isinstance(m, wire.Step)])
     assert len(per_step) == steps
     expected_ns = compute_ms * 1e6
     assert per_step[0] == pytest.approx(expected_ns, rel=0.10)

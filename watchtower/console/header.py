@@ -117,7 +117,8 @@ class JobHeader(Widget):
             ),
             self._figure("step", fmt.count(snap["last_step"])),
             self._figure("step time", fmt.seconds(step_time["recent_s"])),
-            self._figure("", "stalled" if stalled else _rate(snap["steps_per_s"]), bad=stalled),
+            self._figure("", "stalled" if stalled else "finished" if liveness.get("finished")
+                         else _rate(snap["steps_per_s"]), bad=stalled),
         ], width)
         line.append(" ")
         if not self.plain:
@@ -132,7 +133,8 @@ class JobHeader(Widget):
         loss = snap["loss"]
         liveness = snap.get("liveness", {})
         live = snap["ranks"] - len(liveness.get("silent_ranks", ()))
-        pace = "stalled" if liveness.get("stalled") else fmt.seconds(snap["step_time"]["recent_s"]) + "/step"
+        pace = "stalled" if liveness.get("stalled") else "finished" if liveness.get("finished") \
+            else fmt.seconds(snap["step_time"]["recent_s"]) + "/step"
         return [
             Text.assemble(self._figure("step", fmt.count(snap["last_step"])), " ",
                           self._figure("", pace, bad=bool(liveness.get("stalled")))),
