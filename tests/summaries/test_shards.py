@@ -104,10 +104,13 @@ def test_merged_raw_sketches_are_identical_and_give_the_same_latency_reference(s
 
 
 def test_merged_step_model_parts_equal_one_fold(split) -> None:
-    """Collective calls add and their callers unite; halo groups unite (the model takes their max)."""
+    """Collective calls add and their callers unite; halo groups unite (the model takes their max); the halo
+    split by node pair adds up (a sender's rows come from the shards of its receivers)."""
     _, _, (whole, _), (merged, _) = split
     a, b = whole.model, merged.model
-    for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes"):
+    assert len(a.row_pair) > 0
+    for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes",
+                 "group_cell", "row_group", "row_pair", "row_msgs", "row_bytes"):
         np.testing.assert_array_equal(getattr(b, name), getattr(a, name), err_msg=name)
     assert (a.workers, a.n_steps, a.work_s, a.path_s, a.measured_s) == (b.workers, b.n_steps, b.work_s, b.path_s,
                                                                          b.measured_s)

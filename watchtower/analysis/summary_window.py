@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from collections import deque
 from collections.abc import Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -35,6 +35,7 @@ from watchtower.analysis.sketch import Sketches
 from watchtower.analysis.summaries import (
     NODE_BITS,
     NS_PER_S,
+    RANK_BITS,
     SIZE_BITS,
     LinkSums,
     Reference,
@@ -44,7 +45,17 @@ from watchtower.analysis.summaries import (
     collective_callers,
     unified_collectives,
 )
-from watchtower.analysis.summary import RECENT_STEPS, SCENARIOS, Analysis, WhatIf, what_ifs
+from watchtower.analysis.summary import (
+    RECENT_STEPS,
+    SCENARIOS,
+    Analysis,
+    Standing,
+    WhatIf,
+    _Fixer,
+    _standing,
+    _with_stakes,
+    what_ifs,
+)
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
@@ -83,6 +94,8 @@ class Figures:
     reference: Reference  # the window's α and busy levels: fold new steps against it
     stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
     fit_steps: tuple[int, ...]
+    standing: tuple[Standing, ...] = ()
+    hours_at_stake: float | None = None  # the "slow links fixed" what-if's, over the remaining steps
 
 
 @dataclass
@@ -255,8 +268,6 @@ class SummaryWindow:
         fit_steps = list(self._fit)
         links, reference, fit_error = self._link_figures(nodes, cluster, remaining, slow_fraction)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
-        links = tuple(replace(lk, saving_per_step_s=float("nan"), hours_at_stake=None) if lk.slow and not lk.local
-                      else lk for lk in links)
         watch = None if series is None else watch_run(
             series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes)), warmup=warmup,
             remaining_steps=remaining, min_effect=min_effect, min_hours=min_hours,
@@ -265,17 +276,28 @@ class SummaryWindow:
         net = [lk for lk in links if not lk.local]
         model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
                          _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
-                         _halo_groups(steps, n_layers))
+                         _halo_groups(steps, n_layers), _halo_split(steps, n_layers, len(nodes)))
+        # From here as ``analyse``: each slow link's stake, the run's, the standing findings, the what-if.
+        fixer = _Fixer(model, links, len(nodes), remaining)
+        links = _with_stakes(fixer, links)
+        net = [lk for lk in links if not lk.local]
+        slow = [lk for lk in net if lk.slow]
+        whatif = what_ifs(model, eff.workers, SCENARIOS)
+        if eff.workers:
+            fixed_step = fixer.step_s(slow)
+            whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step,
+                              model.work_s / fixed_step if fixed_step > 0 else np.nan, True),)
         return Figures(
             first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
             worst=worst_of_sums(ranks, compute, exchange, n_finite, worst_count), links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
             step_wall_s=wall,
-            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts, watch=watch,
+            model=model, whatif=whatif, alerts=alerts, watch=watch,
             fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
-            fit_steps=tuple(s.step for s in fit_steps))
+            fit_steps=tuple(s.step for s in fit_steps), standing=_standing(ports, net, alerts, fixer),
+            hours_at_stake=fixer.hours(slow))
 
 
 def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = None,
@@ -296,9 +318,11 @@ def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = N
                     steps=figures.steps, nodes=figures.nodes, efficiency=figures.efficiency, speedup=figures.speedup,
                     layers=figures.layers, links=figures.links, ports=figures.ports, stragglers=figures.stragglers,
                     alerts=figures.alerts, recoveries=() if figures.watch is None else figures.watch.recoveries,
-                    changes=() if figures.watch is None else figures.watch.changes, standing=(), watch=figures.watch,
+                    changes=() if figures.watch is None else figures.watch.changes, standing=figures.standing,
+                    watch=figures.watch,
                     step_s=figures.step_s, recent_step_s=recent_step_s,
-                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s), hours_at_stake=None,
+                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s),
+                    hours_at_stake=figures.hours_at_stake,
                     model=figures.model, whatif=figures.whatif, serial_fraction=None)
 
 
@@ -368,6 +392,26 @@ def _halo_groups(steps: Sequence[StepSummary], n_layers: int) -> tuple[np.ndarra
     cells = [i * max(1, n_layers) + s.halo[:, 0].astype(np.int64) for i, s in enumerate(steps)]
     rows = np.concatenate([s.halo for s in steps])
     return np.concatenate(cells), rows[:, 1], rows[:, 2]
+
+
+def _halo_split(steps: Sequence[StepSummary], n_layers: int, n_nodes: int) -> tuple[np.ndarray, ...]:
+    """``models._halo_rows`` from the steps' halo rows: each (step, layer, rank, side) group's cell, then per
+    row its group, node pair code (src × nodes + dst), messages and bytes."""
+    cells, row_group, links, msgs, nbytes = [], [], [], [], []
+    offset = 0
+    for i, s in enumerate(steps):
+        h = s.halo_rows
+        first = np.r_[True, h.group[1:] != h.group[:-1]] if len(h.group) else np.zeros(0, bool)
+        cells.append(i * max(1, n_layers) + (h.group[first] >> RANK_BITS))
+        row_group.append(offset + np.cumsum(first) - 1)
+        offset += int(first.sum())
+        links.append(h.link)
+        msgs.append(h.msgs)
+        nbytes.append(h.bytes)
+    link = np.concatenate([np.zeros(0, np.int64), *links])
+    return (np.concatenate([np.zeros(0, np.int64), *cells]), np.concatenate([np.zeros(0, np.int64), *row_group]),
+            (link >> NODE_BITS) * n_nodes + (link & ((1 << NODE_BITS) - 1)), np.concatenate([np.zeros(0), *msgs]),
+            np.concatenate([np.zeros(0), *nbytes]))
 
 
 def _nanmedian(values: Sequence[float]) -> float:
