@@ -20,6 +20,7 @@ import pytest
 
 from tests.summaries.conftest import Folded, Recorded
 from watchtower.analysis import Analysis, RunSeries, analyse, analysis_to_json, hockney_lstsq
+from watchtower.analysis.checks import Checks
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
 from watchtower.analysis.links import LinkStats
@@ -36,9 +37,10 @@ NOT_FROM_SUMMARIES = {
 }
 
 
-def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None) -> Figures:
+def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None,
+                    checks: Checks | None = None) -> Figures:
     """The figures of the steps folded against the window's reference (as collect converges)."""
-    return _window_of(folded.converged, len(rec.window.steps)).figures(rec.cluster, series=series)
+    return _window_of(folded.converged, len(rec.window.steps)).figures(rec.cluster, series=series, checks=checks)
 
 
 def _series(rec: Recorded) -> RunSeries:

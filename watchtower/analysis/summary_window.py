@@ -10,11 +10,12 @@ from __future__ import annotations
 
 from collections import deque
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
+from watchtower.analysis.checks import Checks, check_rate_series, fit_checks
 from watchtower.analysis.cusum import FALSE_ALERTS_PER_DAY, MIN_EFFECT, MIN_HOURS, WARMUP, Alert, Watch, watch_run
 from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
 from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
@@ -29,7 +30,7 @@ from watchtower.analysis.links import (
 from watchtower.analysis.models import StepModel, eta_s, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
-from watchtower.analysis.robust import fit_bins
+from watchtower.analysis.robust import HockneyFit, fit_bins
 from watchtower.analysis.sharing import level_of_bins
 from watchtower.analysis.sketch import Sketches
 from watchtower.analysis.summaries import (
@@ -53,6 +54,7 @@ from watchtower.analysis.summary import (
     WhatIf,
     _Fixer,
     _standing,
+    _with_checked,
     _with_stakes,
     what_ifs,
 )
@@ -174,8 +176,11 @@ class SummaryWindow:
             self._enter(step)
 
     def _link_figures(self, nodes: tuple[str, ...], cluster: Cluster, remaining: int | None,
-                      slow_fraction: float) -> tuple[tuple[LinkStats, ...], Reference, dict[tuple[str, str], FitError]]:
-        """Link figures as ``links.link_stats`` computes them, from the running link sums and fit sketches."""
+                      slow_fraction: float, checks: Checks | None
+                      ) -> tuple[tuple[LinkStats, ...], Reference, dict[tuple[str, str], FitError]]:
+        """Link figures as ``links.link_stats`` computes them, from the running link sums and fit sketches, and
+        the pair ``checks``' links the job's transfers do not cover (fitted from the checks themselves: the
+        store keeps only each pair's newest few)."""
         n_nodes, window = len(nodes), self._links
         codes, n_links = window.key, len(window.key)
         accuracy = self.summaries[-1].raw_s.accuracy
@@ -203,12 +208,26 @@ class SummaryWindow:
         pairs = (codes >> NODE_BITS) * n_nodes + (codes & ((1 << NODE_BITS) - 1))
         column = {name: window.values[:, i] for i, name in enumerate(_LINK_COLUMNS)}
         worst = column["worst_receiver_s"]  # Σ over steps of each step's slowest receiver
-        links = judge_links(pairs, nodes, cluster, fit, column["bytes"], column["busy_s"],
-                            column["transfers"].astype(np.int64), remaining,
-                            lambda shrink: worst * shrink / len(self.summaries), slow_fraction=slow_fraction)
+        total_bytes, busy, count = column["bytes"], column["busy_s"], column["transfers"].astype(np.int64)
+        period = None
+        if checks is not None and len(checks):  # as links.link_stats: checked pairs after the job's own
+            fits = fit_checks(checks, n_nodes)
+            new = ~np.isin(fits.pairs, pairs)
+            pairs = np.concatenate([pairs, fits.pairs[new]])
+            fit = HockneyFit(*(np.concatenate([getattr(fit, f), getattr(fits.fit, f)[new]])
+                               for f in ("alpha_s", "beta_Bps", "sizes", "clamped")))
+            total_bytes = np.concatenate([total_bytes, fits.bytes[new]])
+            busy = np.concatenate([busy, fits.busy_s[new]])
+            count = np.concatenate([count, fits.count[new]])
+            period = checks.period_s if np.isfinite(checks.period_s) else None
+        links = judge_links(pairs, nodes, cluster, fit, total_bytes, busy, count, remaining,
+                            lambda shrink: _padded(worst * shrink[:n_links] / len(self.summaries), len(pairs), 0.0),
+                            n_job=n_links, check_every_s=period, slow_fraction=slow_fraction)
         src, dst = codes >> NODE_BITS, codes & ((1 << NODE_BITS) - 1)
         bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
                   for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
+        for pair in pairs[n_links:].tolist():  # checked links: fitted from the checks themselves, exactly
+            bounds[nodes[pair // n_nodes], nodes[pair % n_nodes]] = FitError(0.0, 0.0)
         return links, reference, bounds
 
     def link_sums(self) -> LinkSums:
@@ -238,14 +257,13 @@ class SummaryWindow:
                 slow_fraction: float = SLOW_FRACTION, nic_Bps: np.ndarray | None = None,
                 worst_count: int = 5, series: RunSeries | None = None, warmup: int = WARMUP,
                 min_effect: float = MIN_EFFECT, min_hours: float = MIN_HOURS,
-                false_alerts_per_day: float = FALSE_ALERTS_PER_DAY) -> Figures:
+                false_alerts_per_day: float = FALSE_ALERTS_PER_DAY, checks: Checks | None = None) -> Figures:
         """The window's figures (see ``analysis.summary.analyse`` for each one's definition). With the run's
         ``series``, the run's watch too (alerts, recoveries, changes against the same bar), links watched over
         the window's fitted steps as ``analyse`` does with ``history`` = this window.
 
-        Not from summaries yet (see docs/snapshot.md): a slow link's saving and hours at stake (``analyse``
-        predicts them with the halo split by node pair, which summaries do not keep: here NaN and None), the
-        standing findings and the "slow links fixed" what-if; pair-check links; ``worst.waits_on`` (−1)."""
+        ``checks`` are the node daemons' pair checks, as ``analyse`` takes them (the store keeps each pair's
+        newest few): their links join the job's, and with ``series`` their rates are watched too."""
         steps = list(self.summaries)
         newest = steps[-1]
         layers, nodes = newest.layers, newest.nodes
@@ -266,12 +284,16 @@ class SummaryWindow:
         run_last = last_step if series is None or not len(series.steps) else max(last_step, int(series.steps[-1]))
         remaining = _remaining(cluster.total_steps, run_last)
         fit_steps = list(self._fit)
-        links, reference, fit_error = self._link_figures(nodes, cluster, remaining, slow_fraction)
+        links, reference, fit_error = self._link_figures(nodes, cluster, remaining, slow_fraction, checks)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
+        bar = {"warmup": warmup, "remaining_steps": remaining, "min_effect": min_effect, "min_hours": min_hours,
+               "false_alerts_per_day": false_alerts_per_day}
         watch = None if series is None else watch_run(
-            series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes)), warmup=warmup,
-            remaining_steps=remaining, min_effect=min_effect, min_hours=min_hours,
-            false_alerts_per_day=false_alerts_per_day)
+            series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes)), **bar)
+        checked = {(lk.src, lk.dst) for lk in links if lk.measured_by == "check"}
+        rates = None if watch is None or not checked or checks is None else _checked_rates(checks, checked)
+        if rates is not None:
+            watch = _with_checked(watch, watch_run(series, nodes, links=rates, **bar))
         alerts = () if watch is None else name_alert_ports(watch.alerts, links)
         net = [lk for lk in links if not lk.local]
         model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
@@ -324,6 +346,17 @@ def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = N
                     remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s),
                     hours_at_stake=figures.hours_at_stake,
                     model=figures.model, whatif=figures.whatif, serial_fraction=None)
+
+
+def _checked_rates(checks: Checks, checked: set[tuple[int, int]]) -> RunSeries | None:
+    """The pair checks' rate series of the links only checks measure (as ``analyse`` watches them)."""
+    rates = check_rate_series(checks)
+    keep = [j for j, pair in enumerate(rates.links) if pair in checked]
+    if not keep:
+        return None
+    return replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
+                   link_transfer_s=rates.link_transfer_s[:, keep],
+                   link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
 
 
 def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
@@ -464,8 +497,8 @@ def _rows(rows: np.ndarray) -> np.ndarray | slice:
     return slice(0, len(rows)) if np.array_equal(rows, np.arange(len(rows))) else rows
 
 
-def _padded(x: np.ndarray, n: int) -> np.ndarray:
-    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), np.nan)])
+def _padded(x: np.ndarray, n: int, fill: float = np.nan) -> np.ndarray:
+    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), fill)])
 
 
 def _grown(array: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
