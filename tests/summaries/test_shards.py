@@ -69,7 +69,7 @@ def test_merged_rank_figures_equal_one_fold(split) -> None:
     _, _, (whole, _), (merged, _) = split
     for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank", "comm_bound"):
         np.testing.assert_array_equal(getattr(merged.layers, name), getattr(whole.layers, name), err_msg=name)
-    for name in ("rank", "compute_s", "exchange_s", "comm_fraction"):
+    for name in ("rank", "compute_s", "exchange_s", "comm_fraction", "waits_on"):
         np.testing.assert_array_equal(getattr(merged.worst, name), getattr(whole.worst, name), err_msg=name)
     assert merged.efficiency.load_balance == whole.efficiency.load_balance
     assert merged.efficiency.communication == whole.efficiency.communication

@@ -97,6 +97,8 @@ def test_layers_and_their_worst_ranks_are_exact(recorded: Recorded, both: tuple[
     np.testing.assert_allclose(mine.worst.comm_fraction, drill.comm_fraction, rtol=EXACT)
     np.testing.assert_allclose(mine.worst.exchange_s, drill.exchange_s, rtol=EXACT)
     np.testing.assert_array_equal(mine.worst.rank, drill.rank)
+    np.testing.assert_array_equal(mine.worst.waits_on, drill.waits_on)  # summed per (layer, receiver, sender)
+    assert (drill.waits_on >= 0).any()
 
 
 def test_stragglers_are_exact(both: tuple[Analysis, Figures]) -> None:
@@ -392,6 +394,7 @@ def test_a_window_that_slides_equals_one_built_from_its_steps_alone(folded: Fold
     for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank"):
         np.testing.assert_array_equal(getattr(a.layers, name), getattr(b.layers, name), err_msg=name)
     np.testing.assert_array_equal(a.efficiency.useful_s, b.efficiency.useful_s)
+    np.testing.assert_array_equal(a.worst.waits_on, b.worst.waits_on)
     assert (a.efficiency.load_balance, a.stragglers, a.first_step) == (b.efficiency.load_balance, b.stragglers,
                                                                        b.first_step)
     assert [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in a.links] == \

@@ -127,7 +127,7 @@ class LinkSums:
             return st / count - slope * sn / count, np.where(slope > 0, 1.0 / slope, np.nan)
 
 
-RANK_BITS = 21  # a halo group is layer << 21 | rank << 1 | side: ranks below agent.wire.MAX_WORLD = 2^20
+RANK_BITS = 21  # a rank in a packed key (ranks are below agent.wire.MAX_WORLD = 2^20, with a bit to spare)
 
 
 @dataclass(frozen=True)
@@ -181,6 +181,7 @@ class StepSummary:
     watch: np.ndarray  # float64 [P, 3] per row of ``links``: median rate with sharing out, its bytes, its time
     halo: np.ndarray  # float64 [H, 3]: distinct (layer, messages, bytes) of a receiving rank's network transfers
     halo_rows: HaloRows  # the same transfers by rank and node pair, at both ends (the per-link step model)
+    waits: Sparse  # per (layer, receiving rank, sending rank) ``waits_key``: Σ end − start (waiting included)
     collectives: np.ndarray  # int64 [K, 3]: distinct (op, group size, bytes) calls
     collective_calls: np.ndarray  # int64 [K]: calls of each, all ranks together
     collective_ranks: np.ndarray  # int64 [C, 2]: distinct (row in collectives, rank id) that made such a call
@@ -213,6 +214,7 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
                (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[known], np.isfinite(tr.wait_s[known]))
     layer = np.asarray(tr.layer, np.int64)[known]
     src_rank, dst_rank = np.asarray(tr.src, np.int64)[known], np.asarray(tr.dst, np.int64)[known]
+    took = np.nan_to_num(tr.end_s[known] - tr.start_s[known], nan=0.0).clip(min=0.0)  # drilldown._waits_on's
     col = window.collectives
     _, c_ok = window.rank_index(col.rank)
     c_pos, c_step_ok = window.step_index(col.step)
@@ -240,6 +242,7 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
             halo=_halo(src_node[sel], dst_node[sel], layer[sel], columns[2][sel], columns[3][sel], len(window.ranks)),
             halo_rows=_halo_rows(src_node[sel], dst_node[sel], layer[sel], src_rank[sel], dst_rank[sel],
                                  columns[3][sel]),
+            waits=Sparse.of(waits_key(layer[sel], dst_rank[sel], src_rank[sel]), took[sel]),
             **_collectives(calls[c_sel], callers[c_sel]), reference=reference))
     return out
 
@@ -350,6 +353,11 @@ def _halo(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, receiver: np.ndar
     return np.unique(rows, axis=0) if len(rows) else np.zeros((0, 3))
 
 
+def waits_key(layer: np.ndarray, receiver: np.ndarray, sender: np.ndarray) -> np.ndarray:
+    """One int64 per (layer, receiving rank, sending rank): whom a rank waits on (``drilldown.WorstRanks``)."""
+    return (((np.asarray(layer, np.int64) << RANK_BITS) | receiver) << RANK_BITS) | sender
+
+
 def _halo_rows(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, src_rank: np.ndarray, dst_rank: np.ndarray,
                n: np.ndarray) -> HaloRows:
     """The step's network transfers by (layer, rank, side) and node pair: each message counts at its receiver
@@ -419,6 +427,7 @@ def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
                    busy=Sparse.merged([p.busy for p in parts]),
                    halo=np.unique(np.concatenate([p.halo for p in parts]), axis=0),
                    halo_rows=HaloRows.merged([p.halo_rows for p in parts]),
+                   waits=Sparse.merged([p.waits for p in parts]),
                    **_merged_collectives(parts))
 
 

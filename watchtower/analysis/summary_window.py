@@ -45,6 +45,7 @@ from watchtower.analysis.summaries import (
     busy_items,
     collective_callers,
     unified_collectives,
+    waits_key,
 )
 from watchtower.analysis.summary import (
     RECENT_STEPS,
@@ -122,6 +123,7 @@ class SummaryWindow:
     _bin_bytes: _Running = field(default_factory=lambda: _Running(1))
     _busy: _Running = field(default_factory=lambda: _Running(1))
     _fit_links: _Running = field(default_factory=lambda: _Running(2))  # transfers, with known waits
+    _waits: _Running = field(default_factory=lambda: _Running(1))  # by summaries.waits_key: Σ time per sender
     _pushes: int = 0
 
     def push(self, summary: StepSummary) -> None:
@@ -145,6 +147,7 @@ class SummaryWindow:
         """A new step: into the window's link sums and the fit (which then drops its oldest steps while it
         holds more than ``MAX_FIT_TRANSFERS`` transfers and more than one step, as ``links`` chooses them)."""
         self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, +1)
+        self._waits.add(s.waits.key, s.waits.value[:, None], 1, +1)
         self._fit.append(s)
         self._fit_total += s.transfers
         self._fit_add(s, +1)
@@ -155,6 +158,7 @@ class SummaryWindow:
 
     def _leave(self, s: StepSummary) -> None:
         self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, -1)
+        self._waits.add(s.waits.key, s.waits.value[:, None], 1, -1)
         if self._fit and self._fit[0] is s:
             self._fit.popleft()
             self._fit_total -= s.transfers
@@ -170,6 +174,7 @@ class SummaryWindow:
     def _rebuild(self) -> None:
         steps = list(self.summaries)
         self._links, self._fit, self._fit_total = _Running(len(_LINK_COLUMNS)), deque(), 0
+        self._waits = _Running(1)
         self._raw, self._unshared, self._bin_bytes = _Running(0), _Running(0), _Running(1)
         self._busy, self._fit_links = _Running(1), _Running(2)
         for step in steps:
@@ -229,6 +234,23 @@ class SummaryWindow:
         for pair in pairs[n_links:].tolist():  # checked links: fitted from the checks themselves, exactly
             bounds[nodes[pair // n_nodes], nodes[pair % n_nodes]] = FitError(0.0, 0.0)
         return links, reference, bounds
+
+    def _waits_on(self, picked: np.ndarray) -> np.ndarray:
+        """For each picked rank id [count, L] and its layer, the sender whose transfers into it took longest in
+        all over the window (``drilldown._waits_on``: the lowest rank id among equals), −1 for none."""
+        out = np.full(picked.shape, -1, np.int64)
+        key, took = self._waits.key, self._waits.values[:, 0]
+        cell, sender = key >> RANK_BITS, key & ((1 << RANK_BITS) - 1)
+        want = waits_key(np.arange(picked.shape[1])[None, :], picked, 0) >> RANK_BITS  # [count, L] cells
+        mine = np.isin(cell, want)
+        cell, sender, took = cell[mine], sender[mine], took[mine]
+        best = np.lexsort((-took, cell))  # within a cell senders ascend: ties go to the lowest id
+        first = best[np.r_[True, cell[best][1:] != cell[best][:-1]]] if len(best) else best
+        at = np.searchsorted(cell[first], want)
+        found = at < len(first)
+        found[found] = cell[first][at[found]] == want[found]
+        out[found] = sender[first][at[found]]
+        return out
 
     def link_sums(self) -> LinkSums:
         """Every column of the window's link sums, extremes included (a merge over the steps: for drill-downs)."""
@@ -312,7 +334,9 @@ class SummaryWindow:
         return Figures(
             first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
-            worst=worst_of_sums(ranks, compute, exchange, n_finite, worst_count), links=links, ports=ports,
+            worst=worst_of_sums(ranks, compute, exchange, n_finite, worst_count,
+                                waits_on=lambda order: self._waits_on(ranks[order])),
+            links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
             step_wall_s=wall,
             model=model, whatif=whatif, alerts=alerts, watch=watch,
