@@ -38,6 +38,7 @@ from watchtower.analysis.summaries import (
     NS_PER_S,
     RANK_BITS,
     SIZE_BITS,
+    HaloRows,
     LinkSums,
     Reference,
     Sparse,
@@ -124,6 +125,7 @@ class SummaryWindow:
     _busy: _Running = field(default_factory=lambda: _Running(1))
     _fit_links: _Running = field(default_factory=lambda: _Running(2))  # transfers, with known waits
     _waits: _Running = field(default_factory=lambda: _Running(1))  # by summaries.waits_key: Σ time per sender
+    _halo: dict[int, tuple[np.ndarray, ...]] = field(default_factory=dict)  # by step: ``_halo_parts``
     _pushes: int = 0
 
     def push(self, summary: StepSummary) -> None:
@@ -133,10 +135,12 @@ class SummaryWindow:
         if replaced:
             self._add(self.summaries.pop(), -1)
         self.summaries.append(summary)
+        self._halo[summary.step] = _halo_parts(summary.halo_rows)
         self._add(summary, +1)
         self._enter(summary)
         while len(self.summaries) > self.capacity:
             old = self.summaries.popleft()
+            del self._halo[old.step]
             self._add(old, -1)
             self._leave(old)
         self._pushes += 1
@@ -238,19 +242,19 @@ class SummaryWindow:
     def _waits_on(self, picked: np.ndarray) -> np.ndarray:
         """For each picked rank id [count, L] and its layer, the sender whose transfers into it took longest in
         all over the window (``drilldown._waits_on``: the lowest rank id among equals), −1 for none."""
-        out = np.full(picked.shape, -1, np.int64)
         key, took = self._waits.key, self._waits.values[:, 0]
-        cell, sender = key >> RANK_BITS, key & ((1 << RANK_BITS) - 1)
-        want = waits_key(np.arange(picked.shape[1])[None, :], picked, 0) >> RANK_BITS  # [count, L] cells
-        mine = np.isin(cell, want)
-        cell, sender, took = cell[mine], sender[mine], took[mine]
-        best = np.lexsort((-took, cell))  # within a cell senders ascend: ties go to the lowest id
-        first = best[np.r_[True, cell[best][1:] != cell[best][:-1]]] if len(best) else best
-        at = np.searchsorted(cell[first], want)
-        found = at < len(first)
-        found[found] = cell[first][at[found]] == want[found]
-        out[found] = sender[first][at[found]]
-        return out
+        want = (waits_key(np.arange(picked.shape[1])[None, :], picked, 0) >> RANK_BITS).ravel()  # (layer, rank)
+        lo = np.searchsorted(key, want << RANK_BITS)  # keys are sorted: each cell's senders are one run
+        length = np.searchsorted(key, (want + 1) << RANK_BITS) - lo
+        out = np.full(len(want), -1, np.int64)
+        if length.sum() == 0:
+            return out.reshape(picked.shape)
+        cell = np.repeat(np.arange(len(want)), length)
+        at = np.arange(len(cell)) - np.repeat(np.cumsum(length) - length, length) + np.repeat(lo, length)
+        best = np.lexsort((-took[at], cell))  # within a cell senders ascend: ties go to the lowest id
+        first = best[np.r_[True, cell[best][1:] != cell[best][:-1]]]
+        out[cell[first]] = key[at[first]] & ((1 << RANK_BITS) - 1)
+        return out.reshape(picked.shape)
 
     def link_sums(self) -> LinkSums:
         """Every column of the window's link sums, extremes included (a merge over the steps: for drill-downs)."""
@@ -320,15 +324,17 @@ class SummaryWindow:
         net = [lk for lk in links if not lk.local]
         model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
                          _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
-                         _halo_groups(steps, n_layers), _halo_split(steps, n_layers, len(nodes)))
+                         _halo_groups(steps, n_layers),
+                         _halo_split([self._halo[s.step] for s in steps], n_layers, len(nodes)))
         # From here as ``analyse``: each slow link's stake, the run's, the standing findings, the what-if.
         fixer = _Fixer(model, links, len(nodes), remaining)
         links = _with_stakes(fixer, links)
         net = [lk for lk in links if not lk.local]
         slow = [lk for lk in net if lk.slow]
         whatif = what_ifs(model, eff.workers, SCENARIOS)
+        fixed_step = fixer.step_s(slow)  # (``fixer.hours(slow)`` would predict it again)
+        hours = None if remaining is None else remaining * max(0.0, fixer.now - fixed_step) / 3600.0
         if eff.workers:
-            fixed_step = fixer.step_s(slow)
             whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step,
                               model.work_s / fixed_step if fixed_step > 0 else np.nan, True),)
         return Figures(
@@ -343,14 +349,13 @@ class SummaryWindow:
             fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
             fit_steps=tuple(s.step for s in fit_steps), standing=_standing(ports, net, alerts, fixer),
-            hours_at_stake=fixer.hours(slow))
+            hours_at_stake=hours)
 
 
 def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = None,
                 recent: int = RECENT_STEPS) -> Analysis:
     """The figures as the full analysis's ``Analysis`` (what ``analysis_to_json`` and the snapshot take), with
-    the run-level figures ``analyse`` adds: recent step time and ETA. Hours at stake (None), standing
-    findings (none) and the "slow links fixed" what-if (absent) are not from summaries yet."""
+    the run-level figures ``analyse`` adds: recent step time and ETA."""
     last_step = figures.last_step
     if series is not None and len(series.steps):
         last_step = max(last_step, int(series.steps[-1]))
@@ -451,24 +456,24 @@ def _halo_groups(steps: Sequence[StepSummary], n_layers: int) -> tuple[np.ndarra
     return np.concatenate(cells), rows[:, 1], rows[:, 2]
 
 
-def _halo_split(steps: Sequence[StepSummary], n_layers: int, n_nodes: int) -> tuple[np.ndarray, ...]:
-    """``models._halo_rows`` from the steps' halo rows: each (step, layer, rank, side) group's cell, then per
-    row its group, node pair code (src × nodes + dst), messages and bytes."""
-    cells, row_group, links, msgs, nbytes = [], [], [], [], []
-    offset = 0
-    for i, s in enumerate(steps):
-        h = s.halo_rows
-        first = np.r_[True, h.group[1:] != h.group[:-1]] if len(h.group) else np.zeros(0, bool)
-        cells.append(i * max(1, n_layers) + (h.group[first] >> RANK_BITS))
-        row_group.append(offset + np.cumsum(first) - 1)
-        offset += int(first.sum())
-        links.append(h.link)
-        msgs.append(h.msgs)
-        nbytes.append(h.bytes)
-    link = np.concatenate([np.zeros(0, np.int64), *links])
-    return (np.concatenate([np.zeros(0, np.int64), *cells]), np.concatenate([np.zeros(0, np.int64), *row_group]),
-            (link >> NODE_BITS) * n_nodes + (link & ((1 << NODE_BITS) - 1)), np.concatenate([np.zeros(0), *msgs]),
-            np.concatenate([np.zeros(0), *nbytes]))
+def _halo_parts(h: HaloRows) -> tuple[np.ndarray, ...]:
+    """One step's halo rows as ``_halo_split`` joins them: each group's layer, each row's group (from 0), link
+    code, messages and bytes (worked out once, as the step enters the window)."""
+    first = np.r_[True, h.group[1:] != h.group[:-1]] if len(h.group) else np.zeros(0, bool)
+    return h.group[first] >> RANK_BITS, np.cumsum(first) - 1, h.link, h.msgs, h.bytes
+
+
+def _halo_split(parts: Sequence[tuple[np.ndarray, ...]], n_layers: int, n_nodes: int) -> tuple[np.ndarray, ...]:
+    """``models._halo_rows`` from the steps' ``_halo_parts``: each (step, layer, rank, side) group's cell, then
+    per row its group, node pair code (src × nodes + dst), messages and bytes."""
+    sizes = np.array([0] + [len(p[0]) for p in parts], np.int64)
+    cells = [i * max(1, n_layers) + p[0] for i, p in enumerate(parts)]
+    groups = [offset + p[1] for offset, p in zip(np.cumsum(sizes[:-1]).tolist(), parts, strict=True)]
+    link = np.concatenate([np.zeros(0, np.int64), *(p[2] for p in parts)])
+    return (np.concatenate([np.zeros(0, np.int64), *cells]), np.concatenate([np.zeros(0, np.int64), *groups]),
+            (link >> NODE_BITS) * n_nodes + (link & ((1 << NODE_BITS) - 1)),
+            np.concatenate([np.zeros(0), *(p[3] for p in parts)]),
+            np.concatenate([np.zeros(0), *(p[4] for p in parts)]))
 
 
 def _nanmedian(values: Sequence[float]) -> float:
