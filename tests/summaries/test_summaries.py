@@ -4,9 +4,9 @@ Sums must agree to relative 1e-9. Link β and α come from quantile sketches: ea
 first-order error bound the summary path states for it (``Figures.fit_error``, propagated from the sketch's
 relative accuracy, DDSketch: Masson, Rim & Lee, 2019); the factor 2 covers the second-order terms.
 Figures that follow from β (scores, ports' capacities, the savings of links not judged slow) get the bound
-carried through their formulas; verdicts (slow, reason, port) must be identical. What the summary path does
-not provide yet (docs/snapshot.md, "Figures from per-step summaries") is skipped by name, with the reason:
-``NOT_FROM_SUMMARIES``.
+carried through their formulas; verdicts (slow, reason, port) must be identical. Whatever the summary path
+would not provide (docs/snapshot.md, "Figures from per-step summaries") is skipped by name, with the reason,
+in ``NOT_FROM_SUMMARIES``: now empty.
 """
 
 from __future__ import annotations
@@ -28,13 +28,10 @@ from watchtower.analysis.summary import _Fixer
 from watchtower.analysis.summary_window import Figures, SummaryWindow, as_analysis
 
 EXACT = 1e-9
-# Keys of ``analysis_to_json`` the summary path does not provide yet, and why (docs/snapshot.md).
-NOT_FROM_SUMMARIES = {
-    # Lasting changes below the alert bar are where a watched rate's small shifts decide; the summary path reads
-    # ports' busy levels (behind the watched rates) on a fixed grid, ``busy_level`` on one anchored at the
-    # window's lowest rate: they agree within one 1/16-octave bin, not exactly.
-    "changes": "busy levels on a fixed grid, within one bin of the full analysis's",
-}
+# Keys of ``analysis_to_json`` the summary path does not provide, and why (docs/snapshot.md): none left. (The
+# lasting changes below the alert bar, the last entry, follow since both paths read ports' busy levels on one
+# fixed grid, ``sharing.busy_bins``.)
+NOT_FROM_SUMMARIES: dict[str, str] = {}
 
 
 def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None,
@@ -323,8 +320,8 @@ def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded
     """Per step and link, the watched rate (median with sharing taken out) is computed at the fold, from the
     transfers themselves: the only difference is the α the sharing correction keeps, off by at most the
     latency bound, which moves a rate n/t by at most that over the shortest transfer time. The alerts are the
-    same, their levels within that (recoveries and changes below the bar too, and the charts' design); the demo's
-    degrading way out must raise some."""
+    same, their levels within that (recoveries and lasting changes below the bar too, and the charts' design);
+    the demo's degrading way out must raise some alerts, and its noisy link some changes."""
     series = _series(recorded)
     full = analyse(recorded.window, series, recorded.cluster, history=recorded.window)
     mine = summary_figures(recorded, folded, series=series)
@@ -334,7 +331,8 @@ def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded
     assert (mine.watch.n_series, mine.watch.arl, mine.watch.h_fast, mine.watch.h_slow) == \
         (full.watch.n_series, full.watch.arl, full.watch.h_fast, full.watch.h_slow)
     for what, found, theirs in (("alerts", full.alerts, mine.alerts),
-                                ("recoveries", full.recoveries, mine.watch.recoveries)):  # not "changes"
+                                ("recoveries", full.recoveries, mine.watch.recoveries),
+                                ("changes", full.changes, mine.watch.changes)):
         assert [(a.kind, a.subject, a.step_began, a.step_detected, a.step_closed, a.port) for a in theirs] == \
             [(a.kind, a.subject, a.step_began, a.step_detected, a.step_closed, a.port) for a in found], what
         for a, b in zip(found, theirs, strict=True):
@@ -342,6 +340,7 @@ def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded
     if recorded.name.startswith("netns"):
         return
     assert any(al.kind == "link-throughput" for al in full.alerts)
+    assert full.changes
 
 
 def _agree(full: object, mine: object, path: str, rel: float | None) -> None:
@@ -368,16 +367,16 @@ def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded, folded: Folded
     full = analysis_to_json(analyse(recorded.window, series, recorded.cluster, history=recorded.window))
     mine = analysis_to_json(as_analysis(summary_figures(recorded, folded, series=series), recorded.cluster,
                                                        series))
-    full.pop("changes"), mine.pop("changes")  # NOT_FROM_SUMMARIES["changes"]: approximate
     for links in (full["links"], mine["links"]):
         for lk in links:
             lk.pop("latency_clamped")  # the sign of a sketched intercept: held to α's bound in its own test above
     for found in (full, mine):  # a message prints its levels, held to their bound in the tests above
-        for key in ("alerts", "recoveries", "standing"):
+        for key in ("alerts", "recoveries", "changes", "standing"):
             for al in found[key]:
                 al["message"] = re.sub(r"[0-9.]+ [MG]B/s", "… B/s", al["message"])
-    sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "recoveries", "standing",
+    sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "recoveries", "changes", "standing",
                 "hours_at_stake")
+    assert not NOT_FROM_SUMMARIES.keys() & full.keys()
     _agree({k: v for k, v in full.items() if k not in sketched}, {k: v for k, v in mine.items() if k not in sketched},
            "", EXACT)
     _agree({k: full[k] for k in sketched}, {k: mine[k] for k in sketched}, "", None)
