@@ -332,7 +332,7 @@ class SummaryWindow:
         net = [lk for lk in links if not lk.local]
         slow = [lk for lk in net if lk.slow]
         whatif = what_ifs(model, eff.workers, SCENARIOS)
-        fixed_step = fixer.step_s(slow)  # (``fixer.hours(slow)`` would predict it again)
+        fixed_step = fixer.step_s(slow) if slow else fixer.now  # (``fixer.hours`` would predict it again)
         hours = None if remaining is None else remaining * max(0.0, fixer.now - fixed_step) / 3600.0
         if eff.workers:
             whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step,
