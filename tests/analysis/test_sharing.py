@@ -18,14 +18,17 @@ EDGE = 2.0 ** (1 / 16)  # the busy level is read at the upper edge of a 1/16-oct
 
 def test_busy_level_is_the_time_weighted_90_percent_quantile() -> None:
     # One port: 0.8 s of items at 1 GB/s, 0.2 s at 2 GB/s. By time, 80 % sits at 1 GB/s, so the 90 %
-    # quantile is in the 2 GB/s bin: level = 2e9 × 2^(1/16) (the bin's upper edge), by hand.
+    # quantile is in the 2 GB/s bin. Bins are fixed (bin k holds [2^(k/16), 2^((k+1)/16))) and the level is
+    # the bin's upper edge: by hand 2^(495/16), as 16 log2 2e9 = 494.36.
     rate = np.r_[np.full(8, 1e9), np.full(2, 2e9)]
     (level,) = busy_level(np.zeros(10, np.int64), rate, np.full(10, 0.1), 1)
-    assert level == pytest.approx(2e9 * EDGE, rel=1e-9)
-    # With 95 % of the time at 1 GB/s the 90 % quantile stays in its bin: 1e9 × 2^(1/16).
+    assert level == pytest.approx(2.0 ** (495 / 16), rel=1e-9)
+    assert 2e9 < level <= 2e9 * EDGE
+    # With 95 % of the time at 1 GB/s the 90 % quantile stays in its bin: 2^(479/16) (16 log2 1e9 = 478.36).
     rate = np.r_[np.full(19, 1e9), 2e9]
     (level,) = busy_level(np.zeros(20, np.int64), rate, np.full(20, 0.1), 1)
-    assert level == pytest.approx(1e9 * EDGE, rel=1e-9)
+    assert level == pytest.approx(2.0 ** (479 / 16), rel=1e-9)
+    assert 1e9 < level <= 1e9 * EDGE
 
 
 def flows(spec: list[tuple[int, int, float, float, float]]) -> tuple[np.ndarray, ...]:

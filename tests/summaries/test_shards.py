@@ -69,7 +69,7 @@ def test_merged_rank_figures_equal_one_fold(split) -> None:
     _, _, (whole, _), (merged, _) = split
     for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank", "comm_bound"):
         np.testing.assert_array_equal(getattr(merged.layers, name), getattr(whole.layers, name), err_msg=name)
-    for name in ("rank", "compute_s", "exchange_s", "comm_fraction"):
+    for name in ("rank", "compute_s", "exchange_s", "comm_fraction", "waits_on"):
         np.testing.assert_array_equal(getattr(merged.worst, name), getattr(whole.worst, name), err_msg=name)
     assert merged.efficiency.load_balance == whole.efficiency.load_balance
     assert merged.efficiency.communication == whole.efficiency.communication
@@ -104,10 +104,13 @@ def test_merged_raw_sketches_are_identical_and_give_the_same_latency_reference(s
 
 
 def test_merged_step_model_parts_equal_one_fold(split) -> None:
-    """Collective calls add and their callers unite; halo groups unite (the model takes their max)."""
+    """Collective calls add and their callers unite; halo groups unite (the model takes their max); the halo
+    split by node pair adds up (a sender's rows come from the shards of its receivers)."""
     _, _, (whole, _), (merged, _) = split
     a, b = whole.model, merged.model
-    for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes"):
+    assert len(a.row_pair) > 0
+    for name in ("coll_op", "coll_group", "coll_nbytes", "coll_per_step", "halo_cell", "halo_msgs", "halo_bytes",
+                 "group_cell", "row_group", "row_pair", "row_msgs", "row_bytes"):
         np.testing.assert_array_equal(getattr(b, name), getattr(a, name), err_msg=name)
     assert (a.workers, a.n_steps, a.work_s, a.path_s, a.measured_s) == (b.workers, b.n_steps, b.work_s, b.path_s,
                                                                          b.measured_s)

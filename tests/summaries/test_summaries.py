@@ -4,9 +4,9 @@ Sums must agree to relative 1e-9. Link β and α come from quantile sketches: ea
 first-order error bound the summary path states for it (``Figures.fit_error``, propagated from the sketch's
 relative accuracy, DDSketch: Masson, Rim & Lee, 2019); the factor 2 covers the second-order terms.
 Figures that follow from β (scores, ports' capacities, the savings of links not judged slow) get the bound
-carried through their formulas; verdicts (slow, reason, port) must be identical. What the summary path does
-not provide yet (docs/snapshot.md, "Figures from per-step summaries") is skipped by name, with the reason:
-``NOT_FROM_SUMMARIES``.
+carried through their formulas; verdicts (slow, reason, port) must be identical. Whatever the summary path
+would not provide (docs/snapshot.md, "Figures from per-step summaries") is skipped by name, with the reason,
+in ``NOT_FROM_SUMMARIES``: now empty.
 """
 
 from __future__ import annotations
@@ -20,27 +20,24 @@ import pytest
 
 from tests.summaries.conftest import Folded, Recorded
 from watchtower.analysis import Analysis, RunSeries, analyse, analysis_to_json, hockney_lstsq
+from watchtower.analysis.checks import Checks
 from watchtower.analysis.drilldown import worst_ranks
 from watchtower.analysis.efficiency import RELATIVE_JITTER
+from watchtower.analysis.links import LinkStats
+from watchtower.analysis.summary import _Fixer
 from watchtower.analysis.summary_window import Figures, SummaryWindow, as_analysis
 
 EXACT = 1e-9
-# Keys of ``analysis_to_json`` the summary path does not provide yet, and why (docs/snapshot.md).
-HALO_BY_PAIR = "predicted with the halo split by node pair (StepModel.links_comm_s), which summaries do not keep"
-NOT_FROM_SUMMARIES = {
-    "hours_at_stake": HALO_BY_PAIR,  # the run's, and each slow link's
-    "standing": HALO_BY_PAIR,  # each finding carries its hours at stake
-    "slow links fixed": HALO_BY_PAIR,  # the what-if entry with slow_fixed true
-    # Lasting changes below the alert bar are where a watched rate's small shifts decide; the summary path reads
-    # ports' busy levels (behind the watched rates) on a fixed grid, ``busy_level`` on one anchored at the
-    # window's lowest rate: they agree within one 1/16-octave bin, not exactly.
-    "changes": "busy levels on a fixed grid, within one bin of the full analysis's",
-}
+# Keys of ``analysis_to_json`` the summary path does not provide, and why (docs/snapshot.md): none left. (The
+# lasting changes below the alert bar, the last entry, follow since both paths read ports' busy levels on one
+# fixed grid, ``sharing.busy_bins``.)
+NOT_FROM_SUMMARIES: dict[str, str] = {}
 
 
-def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None) -> Figures:
+def summary_figures(rec: Recorded, folded: Folded, series: RunSeries | None = None,
+                    checks: Checks | None = None) -> Figures:
     """The figures of the steps folded against the window's reference (as collect converges)."""
-    return _window_of(folded.converged, len(rec.window.steps)).figures(rec.cluster, series=series)
+    return _window_of(folded.converged, len(rec.window.steps)).figures(rec.cluster, series=series, checks=checks)
 
 
 def _series(rec: Recorded) -> RunSeries:
@@ -57,6 +54,10 @@ def _window_of(summaries: list, capacity: int) -> SummaryWindow:
 
 @pytest.fixture(scope="module")
 def both(recorded: Recorded, folded: Folded) -> tuple[Analysis, Figures]:
+    """Both paths on one window; with a configured total of steps (the namespace run has none), so that hours
+    at stake are worked out."""
+    if recorded.cluster.total_steps is None:
+        recorded = replace(recorded, cluster=replace(recorded.cluster, total_steps=10 * len(recorded.window.steps)))
     return analyse(recorded.window, None, recorded.cluster), summary_figures(recorded, folded)
 
 
@@ -93,6 +94,8 @@ def test_layers_and_their_worst_ranks_are_exact(recorded: Recorded, both: tuple[
     np.testing.assert_allclose(mine.worst.comm_fraction, drill.comm_fraction, rtol=EXACT)
     np.testing.assert_allclose(mine.worst.exchange_s, drill.exchange_s, rtol=EXACT)
     np.testing.assert_array_equal(mine.worst.rank, drill.rank)
+    np.testing.assert_array_equal(mine.worst.waits_on, drill.waits_on)  # summed per (layer, receiver, sender)
+    assert (drill.waits_on >= 0).any()
 
 
 def test_stragglers_are_exact(both: tuple[Analysis, Figures]) -> None:
@@ -145,9 +148,9 @@ def test_verdicts_scores_and_hours_follow_the_bound(both: tuple[Analysis, Figure
             assert max(a.latency_s, b.latency_s) <= 2 * mine.fit_error[a.src_name, a.dst_name].latency_s + 1e-12
         d = 2 * _class_bound(full, mine, a.link_class)
         assert abs(a.score - b.score) <= 2 * 2 * d * (1 + abs(a.score)) / RELATIVE_JITTER, (a.src_name, a.dst_name)
-        if a.slow:  # a slow link's saving: NOT_FROM_SUMMARIES["hours_at_stake"]
-            assert math.isnan(b.saving_per_step_s) and b.hours_at_stake is None
-        elif a.saving_per_step_s > 0:
+        if a.slow:  # a slow link's stake: through the step model, test_hours_at_stake_follow_the_bound
+            continue
+        if a.saving_per_step_s > 0:
             peers = [lk.bandwidth_Bps for lk in full.links if lk.link_class == a.link_class and not lk.local]
             ratio = a.bandwidth_Bps / float(np.median(peers))
             delta = 2 * (mine.fit_error[a.src_name, a.dst_name].bandwidth_rel + d)
@@ -214,19 +217,111 @@ def test_the_step_model_and_what_ifs_follow_the_fleet_median(both: tuple[Analysi
     assert abs(b.alpha_s - a.alpha_s) <= 2 * max(e.latency_s for e in mine.fit_error.values()) + 1e-12
     # with those, every what-if is the full model's own projection
     same_fabric = replace(a, alpha_s=b.alpha_s, beta_Bps=b.beta_Bps)
-    assert [w.label for w in full.whatif if w.slow_fixed] == ["slow links fixed"]  # NOT_FROM_SUMMARIES
-    for x, y in zip([w for w in full.whatif if not w.slow_fixed], mine.whatif, strict=True):
+    assert [w.label for w in full.whatif if w.slow_fixed] == [w.label for w in mine.whatif if w.slow_fixed] == \
+        ["slow links fixed"]  # held to its bound in test_hours_at_stake_follow_the_bound
+    for x, y in zip([w for w in full.whatif if not w.slow_fixed], [w for w in mine.whatif if not w.slow_fixed],
+                    strict=True):
         assert (x.label, x.workers, x.bandwidth_x, x.latency_div) == (y.label, y.workers, y.bandwidth_x, y.latency_div)
         assert close(y.step_s, same_fabric.step_s(bandwidth_x=y.bandwidth_x, latency_div=y.latency_div,
                                                   workers=y.workers))
+
+
+def test_the_halo_split_by_node_pair_is_exact(both: tuple[Analysis, Figures]) -> None:
+    """The per-link step model's input (``models._halo_rows``: each (step, layer, rank, side) group's messages
+    and bytes by node pair) is a sum: the summaries give it exactly."""
+    full, mine = both
+    a, b = full.model, mine.model
+    assert len(a.row_pair) > 0
+    for name in ("group_cell", "row_group", "row_pair", "row_msgs"):
+        np.testing.assert_array_equal(getattr(b, name), getattr(a, name), err_msg=name)
+    np.testing.assert_allclose(b.row_bytes, a.row_bytes, rtol=EXACT)
+
+
+class _StakeBounds:
+    """Bounds of the step model's predictions (``summary._Fixer``: step(X) = max(path, measured − comm now +
+    comm with the links X at their class's healthy median β)) when every link's α and β may be off by twice its
+    stated bound, as the sketches allow. Each comm is monotone (rising in every α, falling in every β: sums of
+    maxima of α·m + n/β, with medians and minima of β), so the full analysis's model evaluated at the optimistic
+    and the pessimistic corner bounds it; differences are bounded by interval arithmetic (sound, not tight)."""
+
+    def __init__(self, full: Analysis, mine: Figures) -> None:
+        self.model, self.remaining = full.model, full.remaining_steps
+        self.by_name = {f"{lk.src_name}→{lk.dst_name}": lk for lk in full.links if not lk.local}
+        worst_alpha = 2 * max(e.latency_s for e in mine.fit_error.values())
+
+        def corner(sign: float) -> _Fixer:
+            def moved(lk: LinkStats) -> LinkStats:
+                if lk.local:
+                    return lk
+                e = mine.fit_error[lk.src_name, lk.dst_name]
+                return replace(lk, bandwidth_Bps=lk.bandwidth_Bps * (1 - sign * 2 * e.bandwidth_rel),
+                               latency_s=lk.latency_s + sign * 2 * e.latency_s)
+            model = replace(full.model, alpha_s=full.model.alpha_s + sign * worst_alpha)
+            return _Fixer(model, tuple(moved(lk) for lk in full.links), len(full.nodes), full.remaining_steps)
+
+        self.opt, self.pess = corner(-1.0), corner(1.0)
+
+    def _comm(self, fixer: _Fixer, names: list[str]) -> float:
+        beta = fixer.beta.copy()
+        codes = [self.by_name[n].src * fixer.n + self.by_name[n].dst for n in names]
+        beta[codes] = fixer.better[codes]
+        return fixer.model.links_comm_s(fixer.alpha, beta)
+
+    def step(self, names: list[str]) -> tuple[float, float]:
+        """The predicted step time with ``names`` fixed: measured − comm now + comm then, each at its worst."""
+        if not names:
+            return (max(self.model.path_s, self.model.measured_s),) * 2
+        low = self._comm(self.opt, names) - self.pess.comm_now
+        high = self._comm(self.pess, names) - self.opt.comm_now
+        return max(self.model.path_s, self.model.measured_s + low), max(self.model.path_s, self.model.measured_s + high)
+
+    def hours(self, before: list[str], after: list[str]) -> tuple[float, float]:
+        """remaining × max(0, step(before) − step(after)) / 3600."""
+        (b_lo, b_hi), (a_lo, a_hi) = self.step(before), self.step(after)
+        scale = self.remaining / 3600.0
+        return scale * max(0.0, b_lo - a_hi), scale * max(0.0, b_hi - a_lo)
+
+
+def test_hours_at_stake_follow_the_bound(both: tuple[Analysis, Figures]) -> None:
+    """Each slow link's stake, the run's, every standing finding's (both stakes) and the "slow links fixed"
+    what-if come from the step model with each node pair at its own α and β: the model's input is exact (test
+    above), its α and β within the sketch bound, so each figure lies within the bounds that allows (and so does
+    the full analysis's own, which shows the bounds hold what they claim). The findings themselves are the same."""
+    full, mine = both
+    assert full.remaining_steps is not None and mine.hours_at_stake is not None
+    bound = _StakeBounds(full, mine)
+
+    def within(x: float, y: float, lo_hi: tuple[float, float], what: object) -> None:
+        lo, hi = lo_hi
+        slack = 1e-9 * max(1.0, hi)
+        assert lo - slack <= x <= hi + slack and lo - slack <= y <= hi + slack, (what, x, y, lo, hi)
+
+    slow = [f"{lk.src_name}→{lk.dst_name}" for lk in full.links if lk.slow and not lk.local]
+    assert slow == [f"{lk.src_name}→{lk.dst_name}" for lk in mine.links if lk.slow and not lk.local]
+    within(full.hours_at_stake, mine.hours_at_stake, bound.hours([], slow), "run")
+    for a, b in zip(full.links, mine.links, strict=True):
+        if a.slow and not a.local:
+            within(a.hours_at_stake, b.hours_at_stake, bound.hours([], [f"{a.src_name}→{a.dst_name}"]), a.src_name)
+            assert close(b.saving_per_step_s * full.remaining_steps / 3600, b.hours_at_stake)
+    assert [(f.kind, f.subject, f.culprit, f.links) for f in mine.standing] == \
+        [(f.kind, f.subject, f.culprit, f.links) for f in full.standing]
+    for a, b in zip(full.standing, mine.standing, strict=True):
+        within(a.hours_at_stake, b.hours_at_stake, bound.hours([], list(a.links)), a.subject)
+        others = [n for n in slow if n not in a.links]
+        within(a.hours_once_others_fixed, b.hours_once_others_fixed, bound.hours(others, slow), a.subject)
+    (x,), (y,) = [w for w in full.whatif if w.slow_fixed], [w for w in mine.whatif if w.slow_fixed]
+    within(x.step_s, y.step_s, bound.step(slow), "slow links fixed")
+    if slow:  # the bound is narrow enough to mean something
+        lo, hi = bound.hours([], slow)
+        assert mine.hours_at_stake > 0 and hi - lo < 0.1 * mine.hours_at_stake, (lo, hi)
 
 
 def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded) -> None:
     """Per step and link, the watched rate (median with sharing taken out) is computed at the fold, from the
     transfers themselves: the only difference is the α the sharing correction keeps, off by at most the
     latency bound, which moves a rate n/t by at most that over the shortest transfer time. The alerts are the
-    same, their levels within that (recoveries and changes below the bar too, and the charts' design); the demo's
-    degrading way out must raise some."""
+    same, their levels within that (recoveries and lasting changes below the bar too, and the charts' design);
+    the demo's degrading way out must raise some alerts, and its noisy link some changes."""
     series = _series(recorded)
     full = analyse(recorded.window, series, recorded.cluster, history=recorded.window)
     mine = summary_figures(recorded, folded, series=series)
@@ -236,7 +331,8 @@ def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded
     assert (mine.watch.n_series, mine.watch.arl, mine.watch.h_fast, mine.watch.h_slow) == \
         (full.watch.n_series, full.watch.arl, full.watch.h_fast, full.watch.h_slow)
     for what, found, theirs in (("alerts", full.alerts, mine.alerts),
-                                ("recoveries", full.recoveries, mine.watch.recoveries)):  # not "changes"
+                                ("recoveries", full.recoveries, mine.watch.recoveries),
+                                ("changes", full.changes, mine.watch.changes)):
         assert [(a.kind, a.subject, a.step_began, a.step_detected, a.step_closed, a.port) for a in theirs] == \
             [(a.kind, a.subject, a.step_began, a.step_detected, a.step_closed, a.port) for a in found], what
         for a, b in zip(found, theirs, strict=True):
@@ -244,6 +340,7 @@ def test_the_watch_is_the_full_analysis_watch(recorded: Recorded, folded: Folded
     if recorded.name.startswith("netns"):
         return
     assert any(al.kind == "link-throughput" for al in full.alerts)
+    assert full.changes
 
 
 def _agree(full: object, mine: object, path: str, rel: float | None) -> None:
@@ -270,21 +367,16 @@ def test_the_snapshot_json_agrees_key_for_key(recorded: Recorded, folded: Folded
     full = analysis_to_json(analyse(recorded.window, series, recorded.cluster, history=recorded.window))
     mine = analysis_to_json(as_analysis(summary_figures(recorded, folded, series=series), recorded.cluster,
                                                        series))
-    for key in ("hours_at_stake", "standing"):  # NOT_FROM_SUMMARIES
-        assert mine.pop(key) in (None, [])
-        full.pop(key)
-    full.pop("changes"), mine.pop("changes")  # NOT_FROM_SUMMARIES["changes"]: approximate
     for links in (full["links"], mine["links"]):
         for lk in links:
             lk.pop("latency_clamped")  # the sign of a sketched intercept: held to α's bound in its own test above
-            if lk["slow"]:
-                lk.pop("hours_at_stake")  # a slow link's hours: NOT_FROM_SUMMARIES
-    full["whatif"] = [w for w in full["whatif"] if not w["slow_fixed"]]  # NOT_FROM_SUMMARIES["slow links fixed"]
-    for found in (full, mine):  # a message prints its levels, held to their bound in the watch test above
-        for key in ("alerts", "recoveries"):
+    for found in (full, mine):  # a message prints its levels, held to their bound in the tests above
+        for key in ("alerts", "recoveries", "changes", "standing"):
             for al in found[key]:
-                al["message"] = re.sub(r"[0-9.]+ MB/s", "… MB/s", al["message"])
-    sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "recoveries")
+                al["message"] = re.sub(r"[0-9.]+ [MG]B/s", "… B/s", al["message"])
+    sketched = ("links", "ports", "local_links", "model", "whatif", "alerts", "recoveries", "changes", "standing",
+                "hours_at_stake")
+    assert not NOT_FROM_SUMMARIES.keys() & full.keys()
     _agree({k: v for k, v in full.items() if k not in sketched}, {k: v for k, v in mine.items() if k not in sketched},
            "", EXACT)
     _agree({k: full[k] for k in sketched}, {k: mine[k] for k in sketched}, "", None)
@@ -301,6 +393,7 @@ def test_a_window_that_slides_equals_one_built_from_its_steps_alone(folded: Fold
     for name in ("compute_s", "exchange_s", "comm_fraction", "comm_fraction_worst", "worst_rank"):
         np.testing.assert_array_equal(getattr(a.layers, name), getattr(b.layers, name), err_msg=name)
     np.testing.assert_array_equal(a.efficiency.useful_s, b.efficiency.useful_s)
+    np.testing.assert_array_equal(a.worst.waits_on, b.worst.waits_on)
     assert (a.efficiency.load_balance, a.stragglers, a.first_step) == (b.efficiency.load_balance, b.stragglers,
                                                                        b.first_step)
     assert [(lk.src_name, lk.dst_name, lk.bytes, lk.bandwidth_Bps) for lk in a.links] == \

@@ -79,30 +79,18 @@ def busy_level(port: np.ndarray, rate: np.ndarray, seconds: np.ndarray, n_ports:
 
     Time-weighted so that a few tiny transfers, whose intervals catch spikes, cannot set the level; a high
     quantile so that time spent waiting (unknown waits lower the rate) does not. A log histogram (one
-    bincount) stands in for a sort.
+    bincount) on the fixed grid of ``busy_bins`` stands in for a sort: the same grid as the per-step
+    summaries' histograms, so both paths find the same level (``level_of_bins``).
     """
-    level = np.full(n_ports, np.nan)
     ok = (rate > 0) & np.isfinite(rate) & (seconds > 0)
-    if not ok.any():
-        return level
-    port, seconds = port[ok], seconds[ok]
-    octave = np.log2(rate[ok])
-    low = float(octave.min())
-    n_bins = int(min(64.0, float(octave.max()) - low) * bins_per_octave) + 1
-    b = np.minimum(((octave - low) * bins_per_octave).astype(np.int64), n_bins - 1)
-    hist = np.bincount(port * n_bins + b, weights=seconds, minlength=n_ports * n_bins).reshape(n_ports, n_bins)
-    cum = np.cumsum(hist, axis=1)
-    has = cum[:, -1] > 0
-    first = np.argmax(cum >= quantile * cum[:, -1:], axis=1)
-    level[has] = 2.0 ** (low + (first[has] + 1) / bins_per_octave)  # the bin's upper edge
-    return level
+    return level_of_bins(port[ok], busy_bins(rate[ok], bins_per_octave), seconds[ok], n_ports, quantile=quantile,
+                         bins_per_octave=bins_per_octave)
 
 
 def level_of_bins(port: np.ndarray, bins: np.ndarray, seconds: np.ndarray, n_ports: int, *,
                   quantile: float = BUSY_QUANTILE, bins_per_octave: int = BINS_PER_OCTAVE) -> np.ndarray:
-    """``busy_level`` on the fixed grid of ``busy_bins`` from (port, bin, seconds) items, which may be sums of
-    several steps' (per-step summaries). ``busy_level`` anchors its grid at the window's lowest rate instead, so
-    the two agree to within one bin (a factor 2^(1/bins_per_octave))."""
+    """``busy_level`` from (port, bin, seconds) items on the fixed grid of ``busy_bins``, which may be sums of
+    several steps' (per-step summaries): the grid's bins do not depend on the window, so both give one level."""
     level = np.full(n_ports, np.nan)
     if len(bins) == 0:
         return level

@@ -127,6 +127,39 @@ class LinkSums:
             return st / count - slope * sn / count, np.where(slope > 0, 1.0 / slope, np.nan)
 
 
+RANK_BITS = 21  # a rank in a packed key (ranks are below agent.wire.MAX_WORLD = 2^20, with a bit to spare)
+
+
+@dataclass(frozen=True)
+class HaloRows:
+    """One step's network transfers as the step model splits them by node pair (``models._halo_rows``): per
+    group (layer, rank, side: 0 receiving, 1 sending, packed as ``group``) and link code, the messages and
+    bytes. Sorted by (group, link), unique. A sender's group may hold rows from several shards (its
+    transfers are recorded by their receivers), so merging adds equal keys: exact."""
+
+    group: np.ndarray  # int64 layer << RANK_BITS | rank << 1 | side
+    link: np.ndarray  # int64 (src node << NODE_BITS) | dst node
+    msgs: np.ndarray  # float64
+    bytes: np.ndarray  # float64
+
+    @classmethod
+    def of(cls, group: np.ndarray, link: np.ndarray, msgs: np.ndarray, nbytes: np.ndarray) -> HaloRows:
+        if len(group) == 0:
+            empty_i, empty_f = np.zeros(0, np.int64), np.zeros(0)
+            return cls(empty_i, empty_i, empty_f, empty_f)
+        order = np.lexsort((link, group))
+        group, link = group[order], link[order]
+        first = np.r_[True, (group[1:] != group[:-1]) | (link[1:] != link[:-1])]
+        row = np.cumsum(first) - 1
+        return cls(group[first], link[first], np.bincount(row, weights=msgs[order]),
+                   np.bincount(row, weights=nbytes[order]))
+
+    @staticmethod
+    def merged(parts: Sequence[HaloRows]) -> HaloRows:
+        return HaloRows.of(*(np.concatenate([getattr(p, f) for p in parts]) for f in ("group", "link", "msgs",
+                                                                                      "bytes")))
+
+
 @dataclass(frozen=True)
 class StepSummary:
     """One step of one set of ranks, folded. Exact except the two sketches (relative ``sketch.accuracy``)."""
@@ -147,6 +180,8 @@ class StepSummary:
     busy: Sparse  # per (port << 20 | busy bin + 2^19): seconds the port's flows ran at that aggregate rate
     watch: np.ndarray  # float64 [P, 3] per row of ``links``: median rate with sharing out, its bytes, its time
     halo: np.ndarray  # float64 [H, 3]: distinct (layer, messages, bytes) of a receiving rank's network transfers
+    halo_rows: HaloRows  # the same transfers by rank and node pair, at both ends (the per-link step model)
+    waits: Sparse  # per (layer, receiving rank, sending rank) ``waits_key``: Σ end − start (waiting included)
     collectives: np.ndarray  # int64 [K, 3]: distinct (op, group size, bytes) calls
     collective_calls: np.ndarray  # int64 [K]: calls of each, all ranks together
     collective_ranks: np.ndarray  # int64 [C, 2]: distinct (row in collectives, rank id) that made such a call
@@ -178,6 +213,8 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
     columns = (src_node, dst_node, di[known], np.asarray(tr.nbytes[known], np.float64), tr.transfer_s[known],
                (tr.start_s + np.nan_to_num(tr.wait_s, nan=0.0))[known], np.isfinite(tr.wait_s[known]))
     layer = np.asarray(tr.layer, np.int64)[known]
+    src_rank, dst_rank = np.asarray(tr.src, np.int64)[known], np.asarray(tr.dst, np.int64)[known]
+    took = np.nan_to_num(tr.end_s[known] - tr.start_s[known], nan=0.0).clip(min=0.0)  # drilldown._waits_on's
     col = window.collectives
     _, c_ok = window.rank_index(col.rank)
     c_pos, c_step_ok = window.step_index(col.step)
@@ -203,6 +240,9 @@ def fold(window: Window, cluster: Cluster, reference: Reference | None = None,
                               accuracy, tuple(c[around] for c in (src_node, dst_node, columns[5], columns[3],
                                                                   columns[4]))),
             halo=_halo(src_node[sel], dst_node[sel], layer[sel], columns[2][sel], columns[3][sel], len(window.ranks)),
+            halo_rows=_halo_rows(src_node[sel], dst_node[sel], layer[sel], src_rank[sel], dst_rank[sel],
+                                 columns[3][sel]),
+            waits=Sparse.of(waits_key(layer[sel], dst_rank[sel], src_rank[sel]), took[sel]),
             **_collectives(calls[c_sel], callers[c_sel]), reference=reference))
     return out
 
@@ -313,6 +353,24 @@ def _halo(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, receiver: np.ndar
     return np.unique(rows, axis=0) if len(rows) else np.zeros((0, 3))
 
 
+def waits_key(layer: np.ndarray, receiver: np.ndarray, sender: np.ndarray) -> np.ndarray:
+    """One int64 per (layer, receiving rank, sending rank): whom a rank waits on (``drilldown.WorstRanks``)."""
+    return (((np.asarray(layer, np.int64) << RANK_BITS) | receiver) << RANK_BITS) | sender
+
+
+def _halo_rows(src: np.ndarray, dst: np.ndarray, layer: np.ndarray, src_rank: np.ndarray, dst_rank: np.ndarray,
+               n: np.ndarray) -> HaloRows:
+    """The step's network transfers by (layer, rank, side) and node pair: each message counts at its receiver
+    and at its sender (``models._halo_rows``)."""
+    net = src != dst
+    code = (src[net] << NODE_BITS) | dst[net]
+    base = layer[net] << RANK_BITS
+    group = np.concatenate([base | (dst_rank[net] << 1), base | (src_rank[net] << 1) | 1])
+    ones = np.ones(int(net.sum()))
+    return HaloRows.of(group, np.concatenate([code, code]), np.concatenate([ones, ones]),
+                       np.concatenate([n[net], n[net]]))
+
+
 def _collectives(calls: np.ndarray, callers: np.ndarray) -> dict[str, np.ndarray]:
     """Distinct collective calls of the step, how many of each, and which ranks made them."""
     if len(calls) == 0:
@@ -368,6 +426,8 @@ def merge_ranks(parts: Sequence[StepSummary]) -> StepSummary:
                    raw_s=merge([p.raw_s for p in parts]), unshared_s=merge([p.unshared_s for p in parts]),
                    busy=Sparse.merged([p.busy for p in parts]),
                    halo=np.unique(np.concatenate([p.halo for p in parts]), axis=0),
+                   halo_rows=HaloRows.merged([p.halo_rows for p in parts]),
+                   waits=Sparse.merged([p.waits for p in parts]),
                    **_merged_collectives(parts))
 
 

@@ -15,6 +15,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
+from watchtower.analysis.checks import Checks, check_rate_series, fit_checks
 from watchtower.analysis.cusum import FALSE_ALERTS_PER_DAY, MIN_EFFECT, MIN_HOURS, WARMUP, Alert, Watch, watch_run
 from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
 from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
@@ -29,13 +30,15 @@ from watchtower.analysis.links import (
 from watchtower.analysis.models import StepModel, eta_s, model_of
 from watchtower.analysis.models import remaining_steps as _remaining
 from watchtower.analysis.ports import PortStats, name_alert_ports, port_stats
-from watchtower.analysis.robust import fit_bins
+from watchtower.analysis.robust import HockneyFit, fit_bins
 from watchtower.analysis.sharing import level_of_bins
 from watchtower.analysis.sketch import Sketches
 from watchtower.analysis.summaries import (
     NODE_BITS,
     NS_PER_S,
+    RANK_BITS,
     SIZE_BITS,
+    HaloRows,
     LinkSums,
     Reference,
     Sparse,
@@ -43,8 +46,20 @@ from watchtower.analysis.summaries import (
     busy_items,
     collective_callers,
     unified_collectives,
+    waits_key,
 )
-from watchtower.analysis.summary import RECENT_STEPS, SCENARIOS, Analysis, WhatIf, what_ifs
+from watchtower.analysis.summary import (
+    RECENT_STEPS,
+    SCENARIOS,
+    Analysis,
+    Standing,
+    WhatIf,
+    _Fixer,
+    _standing,
+    _with_checked,
+    _with_stakes,
+    what_ifs,
+)
 from watchtower.analysis.window import RunSeries, Window
 from watchtower.cluster import Cluster
 
@@ -83,6 +98,8 @@ class Figures:
     reference: Reference  # the window's α and busy levels: fold new steps against it
     stale_steps: tuple[int, ...]  # fitted steps folded against another reference (β may be off)
     fit_steps: tuple[int, ...]
+    standing: tuple[Standing, ...] = ()
+    hours_at_stake: float | None = None  # the "slow links fixed" what-if's, over the remaining steps
 
 
 @dataclass
@@ -107,6 +124,8 @@ class SummaryWindow:
     _bin_bytes: _Running = field(default_factory=lambda: _Running(1))
     _busy: _Running = field(default_factory=lambda: _Running(1))
     _fit_links: _Running = field(default_factory=lambda: _Running(2))  # transfers, with known waits
+    _waits: _Running = field(default_factory=lambda: _Running(1))  # by summaries.waits_key: Σ time per sender
+    _halo: dict[int, tuple[np.ndarray, ...]] = field(default_factory=dict)  # by step: ``_halo_parts``
     _pushes: int = 0
 
     def push(self, summary: StepSummary) -> None:
@@ -116,10 +135,12 @@ class SummaryWindow:
         if replaced:
             self._add(self.summaries.pop(), -1)
         self.summaries.append(summary)
+        self._halo[summary.step] = _halo_parts(summary.halo_rows)
         self._add(summary, +1)
         self._enter(summary)
         while len(self.summaries) > self.capacity:
             old = self.summaries.popleft()
+            del self._halo[old.step]
             self._add(old, -1)
             self._leave(old)
         self._pushes += 1
@@ -130,6 +151,7 @@ class SummaryWindow:
         """A new step: into the window's link sums and the fit (which then drops its oldest steps while it
         holds more than ``MAX_FIT_TRANSFERS`` transfers and more than one step, as ``links`` chooses them)."""
         self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, +1)
+        self._waits.add(s.waits.key, s.waits.value[:, None], 1, +1)
         self._fit.append(s)
         self._fit_total += s.transfers
         self._fit_add(s, +1)
@@ -140,6 +162,7 @@ class SummaryWindow:
 
     def _leave(self, s: StepSummary) -> None:
         self._links.add(s.links.link, np.column_stack([getattr(s.links, c) for c in _LINK_COLUMNS]), 1, -1)
+        self._waits.add(s.waits.key, s.waits.value[:, None], 1, -1)
         if self._fit and self._fit[0] is s:
             self._fit.popleft()
             self._fit_total -= s.transfers
@@ -155,14 +178,18 @@ class SummaryWindow:
     def _rebuild(self) -> None:
         steps = list(self.summaries)
         self._links, self._fit, self._fit_total = _Running(len(_LINK_COLUMNS)), deque(), 0
+        self._waits = _Running(1)
         self._raw, self._unshared, self._bin_bytes = _Running(0), _Running(0), _Running(1)
         self._busy, self._fit_links = _Running(1), _Running(2)
         for step in steps:
             self._enter(step)
 
     def _link_figures(self, nodes: tuple[str, ...], cluster: Cluster, remaining: int | None,
-                      slow_fraction: float) -> tuple[tuple[LinkStats, ...], Reference, dict[tuple[str, str], FitError]]:
-        """Link figures as ``links.link_stats`` computes them, from the running link sums and fit sketches."""
+                      slow_fraction: float, checks: Checks | None
+                      ) -> tuple[tuple[LinkStats, ...], Reference, dict[tuple[str, str], FitError]]:
+        """Link figures as ``links.link_stats`` computes them, from the running link sums and fit sketches, and
+        the pair ``checks``' links the job's transfers do not cover (fitted from the checks themselves: the
+        store keeps only each pair's newest few)."""
         n_nodes, window = len(nodes), self._links
         codes, n_links = window.key, len(window.key)
         accuracy = self.summaries[-1].raw_s.accuracy
@@ -190,13 +217,44 @@ class SummaryWindow:
         pairs = (codes >> NODE_BITS) * n_nodes + (codes & ((1 << NODE_BITS) - 1))
         column = {name: window.values[:, i] for i, name in enumerate(_LINK_COLUMNS)}
         worst = column["worst_receiver_s"]  # Σ over steps of each step's slowest receiver
-        links = judge_links(pairs, nodes, cluster, fit, column["bytes"], column["busy_s"],
-                            column["transfers"].astype(np.int64), remaining,
-                            lambda shrink: worst * shrink / len(self.summaries), slow_fraction=slow_fraction)
+        total_bytes, busy, count = column["bytes"], column["busy_s"], column["transfers"].astype(np.int64)
+        period = None
+        if checks is not None and len(checks):  # as links.link_stats: checked pairs after the job's own
+            fits = fit_checks(checks, n_nodes)
+            new = ~np.isin(fits.pairs, pairs)
+            pairs = np.concatenate([pairs, fits.pairs[new]])
+            fit = HockneyFit(*(np.concatenate([getattr(fit, f), getattr(fits.fit, f)[new]])
+                               for f in ("alpha_s", "beta_Bps", "sizes", "clamped")))
+            total_bytes = np.concatenate([total_bytes, fits.bytes[new]])
+            busy = np.concatenate([busy, fits.busy_s[new]])
+            count = np.concatenate([count, fits.count[new]])
+            period = checks.period_s if np.isfinite(checks.period_s) else None
+        links = judge_links(pairs, nodes, cluster, fit, total_bytes, busy, count, remaining,
+                            lambda shrink: _padded(worst * shrink[:n_links] / len(self.summaries), len(pairs), 0.0),
+                            n_job=n_links, check_every_s=period, slow_fraction=slow_fraction)
         src, dst = codes >> NODE_BITS, codes & ((1 << NODE_BITS) - 1)
         bounds = {(nodes[a], nodes[b]): FitError(float(ea), float(eb))
                   for a, b, ea, eb in zip(src.tolist(), dst.tolist(), *error, strict=True)}
+        for pair in pairs[n_links:].tolist():  # checked links: fitted from the checks themselves, exactly
+            bounds[nodes[pair // n_nodes], nodes[pair % n_nodes]] = FitError(0.0, 0.0)
         return links, reference, bounds
+
+    def _waits_on(self, picked: np.ndarray) -> np.ndarray:
+        """For each picked rank id [count, L] and its layer, the sender whose transfers into it took longest in
+        all over the window (``drilldown._waits_on``: the lowest rank id among equals), −1 for none."""
+        key, took = self._waits.key, self._waits.values[:, 0]
+        want = (waits_key(np.arange(picked.shape[1])[None, :], picked, 0) >> RANK_BITS).ravel()  # (layer, rank)
+        lo = np.searchsorted(key, want << RANK_BITS)  # keys are sorted: each cell's senders are one run
+        length = np.searchsorted(key, (want + 1) << RANK_BITS) - lo
+        out = np.full(len(want), -1, np.int64)
+        if length.sum() == 0:
+            return out.reshape(picked.shape)
+        cell = np.repeat(np.arange(len(want)), length)
+        at = np.arange(len(cell)) - np.repeat(np.cumsum(length) - length, length) + np.repeat(lo, length)
+        best = np.lexsort((-took[at], cell))  # within a cell senders ascend: ties go to the lowest id
+        first = best[np.r_[True, cell[best][1:] != cell[best][:-1]]]
+        out[cell[first]] = key[at[first]] & ((1 << RANK_BITS) - 1)
+        return out.reshape(picked.shape)
 
     def link_sums(self) -> LinkSums:
         """Every column of the window's link sums, extremes included (a merge over the steps: for drill-downs)."""
@@ -225,14 +283,13 @@ class SummaryWindow:
                 slow_fraction: float = SLOW_FRACTION, nic_Bps: np.ndarray | None = None,
                 worst_count: int = 5, series: RunSeries | None = None, warmup: int = WARMUP,
                 min_effect: float = MIN_EFFECT, min_hours: float = MIN_HOURS,
-                false_alerts_per_day: float = FALSE_ALERTS_PER_DAY) -> Figures:
+                false_alerts_per_day: float = FALSE_ALERTS_PER_DAY, checks: Checks | None = None) -> Figures:
         """The window's figures (see ``analysis.summary.analyse`` for each one's definition). With the run's
         ``series``, the run's watch too (alerts, recoveries, changes against the same bar), links watched over
         the window's fitted steps as ``analyse`` does with ``history`` = this window.
 
-        Not from summaries yet (see docs/snapshot.md): a slow link's saving and hours at stake (``analyse``
-        predicts them with the halo split by node pair, which summaries do not keep: here NaN and None), the
-        standing findings and the "slow links fixed" what-if; pair-check links; ``worst.waits_on`` (−1)."""
+        ``checks`` are the node daemons' pair checks, as ``analyse`` takes them (the store keeps each pair's
+        newest few): their links join the job's, and with ``series`` their rates are watched too."""
         steps = list(self.summaries)
         newest = steps[-1]
         layers, nodes = newest.layers, newest.nodes
@@ -253,36 +310,52 @@ class SummaryWindow:
         run_last = last_step if series is None or not len(series.steps) else max(last_step, int(series.steps[-1]))
         remaining = _remaining(cluster.total_steps, run_last)
         fit_steps = list(self._fit)
-        links, reference, fit_error = self._link_figures(nodes, cluster, remaining, slow_fraction)
+        links, reference, fit_error = self._link_figures(nodes, cluster, remaining, slow_fraction, checks)
         ports, links = port_stats(links, nodes, cluster, nic_Bps, slow_fraction=slow_fraction)
-        links = tuple(replace(lk, saving_per_step_s=float("nan"), hours_at_stake=None) if lk.slow and not lk.local
-                      else lk for lk in links)
+        bar = {"warmup": warmup, "remaining_steps": remaining, "min_effect": min_effect, "min_hours": min_hours,
+               "false_alerts_per_day": false_alerts_per_day}
         watch = None if series is None else watch_run(
-            series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes)), warmup=warmup,
-            remaining_steps=remaining, min_effect=min_effect, min_hours=min_hours,
-            false_alerts_per_day=false_alerts_per_day)
+            series, nodes, links=_rate_series(steps, fit_steps, n_nodes=len(nodes)), **bar)
+        checked = {(lk.src, lk.dst) for lk in links if lk.measured_by == "check"}
+        rates = None if watch is None or not checked or checks is None else _checked_rates(checks, checked)
+        if rates is not None:
+            watch = _with_checked(watch, watch_run(series, nodes, links=rates, **bar))
         alerts = () if watch is None else name_alert_ports(watch.alerts, links)
         net = [lk for lk in links if not lk.local]
         model = model_of(eff, max(1, n_finite), _nanmedian([lk.latency_s for lk in net]),
                          _nanmedian([lk.bandwidth_Bps for lk in net]), _signatures(steps, max(1, n_finite)),
-                         _halo_groups(steps, n_layers))
+                         _halo_groups(steps, n_layers),
+                         _halo_split([self._halo[s.step] for s in steps], n_layers, len(nodes)))
+        # From here as ``analyse``: each slow link's stake, the run's, the standing findings, the what-if.
+        fixer = _Fixer(model, links, len(nodes), remaining)
+        links = _with_stakes(fixer, links)
+        net = [lk for lk in links if not lk.local]
+        slow = [lk for lk in net if lk.slow]
+        whatif = what_ifs(model, eff.workers, SCENARIOS)
+        fixed_step = fixer.step_s(slow) if slow else fixer.now  # (``fixer.hours`` would predict it again)
+        hours = None if remaining is None else remaining * max(0.0, fixer.now - fixed_step) / 3600.0
+        if eff.workers:
+            whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step,
+                              model.work_s / fixed_step if fixed_step > 0 else np.nan, True),)
         return Figures(
             first_step=steps[0].step, last_step=last_step, steps=len(steps), nodes=nodes, efficiency=eff,
             speedup=eff.speedup(), layers=layer_stats(frame, sums, threshold),
-            worst=worst_of_sums(ranks, compute, exchange, n_finite, worst_count), links=links, ports=ports,
+            worst=worst_of_sums(ranks, compute, exchange, n_finite, worst_count,
+                                waits_on=lambda order: self._waits_on(ranks[order])),
+            links=links, ports=ports,
             stragglers=find_stragglers(frame, eff), step_s=eff.wall_s / n_finite if n_finite else np.nan,
             step_wall_s=wall,
-            model=model, whatif=what_ifs(model, eff.workers, SCENARIOS), alerts=alerts, watch=watch,
+            model=model, whatif=whatif, alerts=alerts, watch=watch,
             fit_error=fit_error, reference=reference,
             stale_steps=tuple(s.step for s in fit_steps if not reference.same(s.reference)),
-            fit_steps=tuple(s.step for s in fit_steps))
+            fit_steps=tuple(s.step for s in fit_steps), standing=_standing(ports, net, alerts, fixer),
+            hours_at_stake=hours)
 
 
 def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = None,
                 recent: int = RECENT_STEPS) -> Analysis:
     """The figures as the full analysis's ``Analysis`` (what ``analysis_to_json`` and the snapshot take), with
-    the run-level figures ``analyse`` adds: recent step time and ETA. Hours at stake (None), standing
-    findings (none) and the "slow links fixed" what-if (absent) are not from summaries yet."""
+    the run-level figures ``analyse`` adds: recent step time and ETA."""
     last_step = figures.last_step
     if series is not None and len(series.steps):
         last_step = max(last_step, int(series.steps[-1]))
@@ -296,10 +369,23 @@ def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = N
                     steps=figures.steps, nodes=figures.nodes, efficiency=figures.efficiency, speedup=figures.speedup,
                     layers=figures.layers, links=figures.links, ports=figures.ports, stragglers=figures.stragglers,
                     alerts=figures.alerts, recoveries=() if figures.watch is None else figures.watch.recoveries,
-                    changes=() if figures.watch is None else figures.watch.changes, standing=(), watch=figures.watch,
+                    changes=() if figures.watch is None else figures.watch.changes, standing=figures.standing,
+                    watch=figures.watch,
                     step_s=figures.step_s, recent_step_s=recent_step_s,
-                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s), hours_at_stake=None,
+                    remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s),
+                    hours_at_stake=figures.hours_at_stake,
                     model=figures.model, whatif=figures.whatif, serial_fraction=None)
+
+
+def _checked_rates(checks: Checks, checked: set[tuple[int, int]]) -> RunSeries | None:
+    """The pair checks' rate series of the links only checks measure (as ``analyse`` watches them)."""
+    rates = check_rate_series(checks)
+    keep = [j for j, pair in enumerate(rates.links) if pair in checked]
+    if not keep:
+        return None
+    return replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
+                   link_transfer_s=rates.link_transfer_s[:, keep],
+                   link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
 
 
 def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
@@ -370,6 +456,26 @@ def _halo_groups(steps: Sequence[StepSummary], n_layers: int) -> tuple[np.ndarra
     return np.concatenate(cells), rows[:, 1], rows[:, 2]
 
 
+def _halo_parts(h: HaloRows) -> tuple[np.ndarray, ...]:
+    """One step's halo rows as ``_halo_split`` joins them: each group's layer, each row's group (from 0), link
+    code, messages and bytes (worked out once, as the step enters the window)."""
+    first = np.r_[True, h.group[1:] != h.group[:-1]] if len(h.group) else np.zeros(0, bool)
+    return h.group[first] >> RANK_BITS, np.cumsum(first) - 1, h.link, h.msgs, h.bytes
+
+
+def _halo_split(parts: Sequence[tuple[np.ndarray, ...]], n_layers: int, n_nodes: int) -> tuple[np.ndarray, ...]:
+    """``models._halo_rows`` from the steps' ``_halo_parts``: each (step, layer, rank, side) group's cell, then
+    per row its group, node pair code (src × nodes + dst), messages and bytes."""
+    sizes = np.array([0] + [len(p[0]) for p in parts], np.int64)
+    cells = [i * max(1, n_layers) + p[0] for i, p in enumerate(parts)]
+    groups = [offset + p[1] for offset, p in zip(np.cumsum(sizes[:-1]).tolist(), parts, strict=True)]
+    link = np.concatenate([np.zeros(0, np.int64), *(p[2] for p in parts)])
+    return (np.concatenate([np.zeros(0, np.int64), *cells]), np.concatenate([np.zeros(0, np.int64), *groups]),
+            (link >> NODE_BITS) * n_nodes + (link & ((1 << NODE_BITS) - 1)),
+            np.concatenate([np.zeros(0), *(p[3] for p in parts)]),
+            np.concatenate([np.zeros(0), *(p[4] for p in parts)]))
+
+
 def _nanmedian(values: Sequence[float]) -> float:
     x = np.asarray(values, np.float64)
     x = x[np.isfinite(x)]
@@ -420,8 +526,8 @@ def _rows(rows: np.ndarray) -> np.ndarray | slice:
     return slice(0, len(rows)) if np.array_equal(rows, np.arange(len(rows))) else rows
 
 
-def _padded(x: np.ndarray, n: int) -> np.ndarray:
-    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), np.nan)])
+def _padded(x: np.ndarray, n: int, fill: float = np.nan) -> np.ndarray:
+    return x if len(x) == n else np.concatenate([x, np.full(n - len(x), fill)])
 
 
 def _grown(array: np.ndarray, shape: tuple[int, ...]) -> np.ndarray:
