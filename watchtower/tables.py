@@ -108,6 +108,12 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
          for lk in s["links"]],
         right={3, 4, 5, 6, 7, 8, 10}, width=width, keys=2,
     )
+    above = [lk for lk in s["links"] if lk["nominal_Bps"] and lk["bandwidth_Bps"] is not None
+             and lk["bandwidth_Bps"] > lk["nominal_Bps"]]
+    if above:
+        most = max(lk["bandwidth_Bps"] / lk["nominal_Bps"] - 1 for lk in above)
+        out += _wrap(f"beta above nominal on {count(len(above))} of {count(len(s['links']))} links (up to "
+                     f"{percent(most)}): the fit's error, no card beats its rate", width)
     slow_ports = [p for p in s.get("ports", []) if p["slow"]]
     if slow_ports:
         out += ["", *_wrap("slow ports (a node's way out or in; involve the site's network operators before "

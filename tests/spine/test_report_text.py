@@ -135,6 +135,17 @@ def test_layer_times_are_per_step_as_their_titles_say() -> None:
         assert lay["per_step"]["exchange_worst_s"] >= lay["per_step"]["exchange_s"]
 
 
+def test_a_fitted_beta_above_its_nominal_rate_is_explained_as_the_fits_error() -> None:
+    snap = demo()
+    above = [lk for lk in snap["links"] if lk["nominal_Bps"] and lk["bandwidth_Bps"] > lk["nominal_Bps"]]
+    assert above  # the demo's healthy links fit up to a few % above their cards (a known limit of the fit)
+    text = format_snapshot(snap, width=250)
+    assert f"beta above nominal on {len(above)} of {len(snap['links'])} links" in text
+    for lk in above:
+        lk["bandwidth_Bps"] = lk["nominal_Bps"] * 0.99
+    assert "above nominal" not in format_snapshot(snap, width=250)
+
+
 def test_links_measured_by_pair_checks_say_so_and_job_only_reports_have_no_such_column() -> None:
     snap = demo()
     assert "measured by" not in format_snapshot(snap, width=250)  # the demo's links are all the job's
