@@ -21,6 +21,7 @@ from watchtower.errors import UsageError
 
 DEMO_RECORDING = Path(__file__).parent / "data" / "quorvex.wtrace.gz"
 DISTRIBUTION = "watchtower-fabric"
+DEMO_WHERE = "the bundled demo"  # not its path: inside an installed package that says nothing to a user
 LIVE_STEPS = 1_000_000  # the ranks run until the console closes
 
 
@@ -33,7 +34,7 @@ def run_demo(*, live: bool, speed: float, ranks: int, window: int, run_console: 
         raise UsageError(f"the demo recording is missing from this installation ({DEMO_RECORDING}): reinstall "
                          f"Watchtower (pip install --force-reinstall {DISTRIBUTION}); in a source checkout, "
                          "rebuild it with the generator in demo/")
-    return run_console(ReplayFeed(DEMO_RECORDING, speed=speed, window_steps=window))
+    return run_console(ReplayFeed(DEMO_RECORDING, speed=speed, window_steps=window, where=DEMO_WHERE))
 
 
 def _free_ports(count: int) -> list[int]:

@@ -154,8 +154,9 @@ class ReplayFeed:
 
     def __init__(self, path: Path, *, cluster: Cluster | None = None, speed: float = 1.0, from_step: int = 0,
                  window_steps: int | None = CONSOLE_WINDOW_STEPS, period_s: float = SNAPSHOT_PERIOD_S,
-                 clock: Callable[[], float] = time.monotonic) -> None:
+                 clock: Callable[[], float] = time.monotonic, where: str | None = None) -> None:
         self.path, self.cluster, self.window_steps = path, cluster, window_steps
+        self.where = str(path) if where is None else where  # what the header names as the source
         self.period_s, self.clock = period_s, clock
         self.controls = self
         self.first_step, self.last_step, self.meta = _scan(path)
@@ -217,7 +218,7 @@ class ReplayFeed:
         self._reader = RecordingReader(self.path)
         self._records: Iterator[tuple[int, list[bytes]]] = iter(self._reader)
         self.ingest = Ingest()
-        self._snapshots = _Snapshots(self.ingest, self.cluster, self.meta, {"kind": "replay", "where": str(self.path)},
+        self._snapshots = _Snapshots(self.ingest, self.cluster, self.meta, {"kind": "replay", "where": self.where},
                                      None, self.window_steps, self.period_s, self.clock)
         self._anchor: tuple[float, int] | None = None
         self._pending: tuple[int, list[bytes]] | None = None

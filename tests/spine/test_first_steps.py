@@ -152,15 +152,16 @@ def test_an_installed_package_runs_its_demo_from_any_folder(tmp_path: Path) -> N
     elsewhere.mkdir()
     probe = ("import watchtower.demo as d\n"
              "def show(feed):\n"
-             "    print(d.__file__); print(feed.last_step); return 0\n"
+             "    print(d.__file__); print(feed.last_step); print(feed.where); return 0\n"
              "raise SystemExit(d.run_demo(live=False, speed=1.0, ranks=4, window=120, run_console=show))\n")
     env = {**os.environ, "PYTHONPATH": str(site)}
     run = subprocess.run([sys.executable, "-c", probe], cwd=elsewhere, env=env, capture_output=True, text=True,
                          timeout=120)
     assert run.returncode == 0, run.stderr
-    module, last_step = run.stdout.splitlines()
+    module, last_step, where = run.stdout.splitlines()
     assert Path(module).is_relative_to(site)  # the unpacked wheel's copy, not the source tree
     assert int(last_step) > 0
+    assert where == "the bundled demo"  # the header names it so, not by a path inside site-packages
 
 
 def test_a_missing_demo_recording_says_how_to_get_it_back(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
