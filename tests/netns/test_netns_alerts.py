@@ -36,9 +36,9 @@ def _shape(cluster: NetnsCluster, slow_bps: float | None, fabric_bps: float = FA
 
 
 @pytest.mark.xfail(reason="issue 14 open: even with the job's processes ahead of others (nice -10), the whole "
-                          "machine stalls now and then on the shared 2-core test machine: step time up 18-36 % for "
-                          "8-20 steps with every link slowing at once, which the charts report as closed alerts; "
-                          "0 of 3 runs passed under load, 1 of 1 on a quieter one", strict=False)
+                          "shared 2-core test machine stalls now and then: in 2 of 5 runs the step time rose 18-36 % "
+                          "for 8-20 steps with every link slowing at once, which the charts report as closed alerts "
+                          "(a real slowdown above the 10 % bar, not the job's doing)", strict=False)
 def test_a_healthy_thousand_step_run_raises_no_alert(netns_cluster: NetnsCluster,
                                                       tmp_path_factory: pytest.TempPathFactory) -> None:
     _shape(netns_cluster, None)
