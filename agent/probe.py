@@ -54,6 +54,13 @@ CLOCK_EVERY_S = 30.0  # seconds between clock-offset handshakes
 # A device this many steps behind the host is stuck, not busy (a busy one lags one or two steps): the oldest
 # step's timing is abandoned so memory stays bounded; common practice, no source.
 MAX_PENDING_STEPS = 64
+# NTP's clock filter keeps the last 8 samples and uses the one of least delay (RFC 5905 §10); the probe pings at
+# every step until it holds that many, so a run learns its offset within its first steps.
+CLOCK_SAMPLES = 8
+# Region starts at which a pong is looked for after a ping (a pong comes back within a millisecond or two
+# when the collector is idle); later ones are read at the step's end. Bounded, so a head node that never
+# answers costs a few looks per ping, not one at every region. No source.
+PONG_LOOKS = 16
 
 
 class _Region:
@@ -252,6 +259,10 @@ class Probe:
         self._step_start = clock()
         self._step_wall = wall_clock()
         self._next_ping = 0.0
+        self._ping_t0: int | None = None  # wall time of the ping whose pong has not been read yet
+        self._ping_sent = 0.0  # time.monotonic() when it was sent
+        self._pong_looks = 0  # region starts left at which to look for its pong
+        self._clock_samples: deque[tuple[int, int]] = deque(maxlen=CLOCK_SAMPLES)  # (delay, offset)
         for name in layers:
             self.layer(name)
         self.spool_error: str | None = None
@@ -320,6 +331,9 @@ class Probe:
     # ------------------------------------------------------------------------------------ timing
     def compute(self, layer: str) -> _Region:
         """``with probe.compute("attn.3"):`` times useful work of that layer."""
+        if self._pong_looks:  # a pong read now, not at the step's end, keeps the delay short
+            self._pong_looks -= 1
+            self._poll_clock(ping=False)
         try:
             return self._compute_regions[layer]  # the hot path: one dict lookup
         except KeyError:
@@ -328,6 +342,9 @@ class Probe:
 
     def blocked(self, layer: str) -> _Region:
         """Times exchange (blocked-in-communication) time of a layer without a per-transfer record."""
+        if self._pong_looks:
+            self._pong_looks -= 1
+            self._poll_clock(ping=False)
         try:
             return self._blocked_regions[layer]
         except KeyError:
@@ -607,8 +624,13 @@ class Probe:
             self._spool = None
 
     # ------------------------------------------------------------------------------------ clock
-    def _poll_clock(self) -> None:
-        """Answer any pong from the collector and start a new ping now and then; never waits."""
+    def _poll_clock(self, *, ping: bool = True) -> None:
+        """Read any pong from the collector and, with ``ping``, start a new ping now and then; never waits.
+
+        The NTP estimate is off by up to half the round trip, and a pong read late makes the round trip
+        late: so a pong is looked for at the next ``PONG_LOOKS`` region starts after a ping (not only at the
+        step's end, a whole step later), and of the last ``CLOCK_SAMPLES`` samples the one of least delay is used
+        and reported (NTP's clock filter, RFC 5905 §10)."""
         if self._socket is None:
             return
         while True:
@@ -621,13 +643,21 @@ class Probe:
                 message = wire.decode(reply[1:] if reply and not reply[0] else reply)
             except wire.WireError:
                 continue
-            if isinstance(message, wire.ClockPong):
-                self.offset_ns, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
+            if isinstance(message, wire.ClockPong) and message.t0 == self._ping_t0:
+                self._ping_t0, self._pong_looks = None, 0
+                offset, delay = wire.clock_offset(message.t0, message.t1, message.t2, t3)
+                self._clock_samples.append((delay, offset))
+                delay, self.offset_ns = min(self._clock_samples)
                 self._send(wire.encode_offset(self.sender, self.seq, t3, self.offset_ns, delay))
         now = time.monotonic()
-        if now >= self._next_ping:
-            self._next_ping = now + CLOCK_EVERY_S
-            self._send(wire.encode_ping(self.sender, self.seq, self.wall_clock()))
+        # Every step until the filter is full, then every CLOCK_EVERY_S; one ping out at a time (a pong lost on
+        # the way is given up after CLOCK_EVERY_S).
+        if ping and now >= self._next_ping and (self._ping_t0 is None or now >= self._ping_sent + CLOCK_EVERY_S):
+            self._next_ping = now + (CLOCK_EVERY_S if len(self._clock_samples) >= CLOCK_SAMPLES - 1 else 0.0)
+            self._ping_sent = now
+            self._ping_t0 = self.wall_clock()
+            if self._send(wire.encode_ping(self.sender, self.seq, self._ping_t0)):
+                self._pong_looks = PONG_LOOKS
 
     def refused(self) -> str | None:
         """Why the collector refused this probe's handshake (None while it has not): what a refused agent

@@ -436,9 +436,14 @@ class Store:
             slab.collectives.append(rows)
 
     def offset_ns(self, info: RankInfo) -> int:
-        """Collector clock minus the rank's clock: its own handshake if it made one, else its node daemon's."""
+        """Collector clock minus the rank's clock: its own handshake if it made one, else its node daemon's.
+
+        An estimate within its own error bound (|offset| ≤ round trip / 2, the NTP bound) is not applied: the
+        clocks agree as far as that exchange can tell, and a ping queued behind a choked way out (a round
+        trip of 60 ms, all of it on the way out) is off by up to half its round trip, far more than hosts
+        that keep time with NTP disagree (under a millisecond on a LAN; from memory)."""
         if info.round_trip_ns is not None:
-            return info.offset_ns
+            return info.offset_ns if abs(info.offset_ns) > info.round_trip_ns // 2 else 0
         return self.nodes[info.node].offset_ns or 0
 
     def _add_link_series(self, step: int, info: RankInfo, peers: np.ndarray, nbytes: np.ndarray,

@@ -16,14 +16,16 @@ pytestmark = pytest.mark.netns
 
 FABRIC_BPS = 400e6
 SLOW = "node1"
-# The "slow links fixed" runs use 100 Mb/s and 25 Mb/s, so the token buckets (not the two CPU cores that move
-# every byte through the veth pairs, ~25 MB/s here) set every link's rate in both runs.
-FIXED_FABRIC_BPS = 100e6
+# The "slow links fixed" runs use 50 Mb/s and 12.5 Mb/s, so the token buckets (not the two CPU cores that move
+# every byte through the veth pairs) set every link's rate in both runs: at 100 Mb/s the clean run's four ways
+# out together (~46 MB/s) left the cores too little room when other processes ran, and its step time grew by
+# time no network model explains.
+FIXED_FABRIC_BPS = 50e6
 # 1000 steps kept short: two layers, 16 KiB halos, 1 ms of compute per layer (a few ms per step).
 HEALTHY = Job(steps=1000, layers=2, exchange_bytes=16_384, compute_ms=1.0, seed=5)
 # The namespace scenario of the issue: the same job with one node's way out at a quarter of the fabric rate,
 # then with nothing slowed.
-FIXED_JOB = Job(steps=30, layers=4, exchange_bytes=262_144, compute_ms=1.0, seed=6)
+FIXED_JOB = Job(steps=30, layers=4, exchange_bytes=131_072, compute_ms=1.0, seed=6)
 
 
 def _shape(cluster: NetnsCluster, slow_bps: float | None, fabric_bps: float = FABRIC_BPS) -> None:
@@ -33,9 +35,10 @@ def _shape(cluster: NetnsCluster, slow_bps: float | None, fabric_bps: float = FA
         cluster.shape(SLOW, tc_rate(slow_bps))
 
 
-@pytest.mark.xfail(reason="issue 14 open: on the shared 2-core test machine the healthy run's step time really rises "
-                          "28-50 % for tens of steps (other processes), which the charts report; not yet told apart",
-                   strict=False)
+@pytest.mark.xfail(reason="issue 14 open: even with the job's processes ahead of others (nice -10), the whole "
+                          "shared 2-core test machine stalls now and then: in 2 of 5 runs the step time rose 18-36 % "
+                          "for 8-20 steps with every link slowing at once, which the charts report as closed alerts "
+                          "(a real slowdown above the 10 % bar, not the job's doing)", strict=False)
 def test_a_healthy_thousand_step_run_raises_no_alert(netns_cluster: NetnsCluster,
                                                       tmp_path_factory: pytest.TempPathFactory) -> None:
     _shape(netns_cluster, None)
@@ -55,10 +58,16 @@ def slowed_and_clean(netns_cluster: NetnsCluster,
     return slowed, clean
 
 
-@pytest.mark.xfail(reason="issue 14 open: predicted 0.195-0.243 s against 0.171-0.197 s measured (+14 to +23 %): the "
-                          "waits the slow way out caused stay in the model's residual", strict=False)
 def test_slow_links_fixed_predicts_the_clean_run(slowed_and_clean: tuple[dict[str, Any], dict[str, Any]]) -> None:
-    """The issue's bar: within ±10 % of the step time measured by the same job with nothing slowed."""
+    """The issue's bar: within ±10 % of the step time measured by the same job with nothing slowed.
+
+    Two things once kept the prediction 14-36 % high, both seen by comparing the two runs' link figures:
+    the links into the slowed node, whose acknowledgements leave through its choked way out, stayed slow
+    in the prediction (now fixed with the port); and the probes' clock offsets, read a whole step late, were
+    off by up to half a step, which misaligned the ranks' transfers so that the sharing correction missed
+    overlaps and every healthy link's β came out 10-15 % low (now the pong is read at the next region). A
+    third was this shared machine: other processes on its two cores slowed the clean run, whose four ways
+    out move bytes four times as fast, by time no network model explains (the job now runs ahead of them)."""
     slowed, clean = slowed_and_clean
     assert {(lk["src"], lk["dst"]) for lk in slowed["links"] if lk["slow"]} >= {(SLOW, "node0"), (SLOW, "node2")}
     fixed = next(w for w in slowed["whatif"] if w["slow_fixed"])

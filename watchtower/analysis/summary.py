@@ -154,7 +154,7 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     net = [lk for lk in links if not lk.local]
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
                        _nanmedian([lk.bandwidth_Bps for lk in net]))
-    fixer = _Fixer(model, links, len(window.nodes), remaining)
+    fixer = _Fixer(model, links, ports, len(window.nodes), remaining)
     links = _with_stakes(fixer, links)
     net = [lk for lk in links if not lk.local]
     fixed_step = fixer.step_s([lk for lk in net if lk.slow])
@@ -198,16 +198,32 @@ def _with_checked(watch: Watch, checked: Watch) -> Watch:
 class _Fixer:
     """Predicted step times with chosen slow links at their class's median β (α unchanged), through the
     step model with every node pair at its own α and β: the measured step less the modelled communication
-    as measured plus the modelled communication then (``StepModel.links_comm_s``)."""
+    as measured plus the modelled communication then (``StepModel.links_comm_s``).
 
-    def __init__(self, model: StepModel, links: tuple[LinkStats, ...], n_nodes: int, remaining: int | None) -> None:
+    Fixing a slow port also frees the links whose TCP acknowledgements cross it (RFC 9293: a flow into a
+    node is acknowledged through that node's way out, so a choked way out slows the flows coming in, and a
+    choked way in the flows going out): with every slow link through the port fixed, those links are raised
+    to their class's median too. They are no healthy reference either, so the median leaves them out."""
+
+    def __init__(self, model: StepModel, links: tuple[LinkStats, ...], ports: tuple[PortStats, ...], n_nodes: int,
+                 remaining: int | None) -> None:
         self.model, self.n, self.remaining = model, n_nodes, remaining
         self.alpha = np.zeros(n_nodes * n_nodes)
         self.beta = np.full(n_nodes * n_nodes, np.inf)
         net = [lk for lk in links if not lk.local]
+        slow_ports = [p for p in ports if p.slow]
+        # Per slow port: the slow links it explains (fixing all of them fixes the port) and the links whose
+        # acknowledgements it carries (into its node for a way out, out of its node for a way in).
+        self.port_links = {p.name: {(lk.src, lk.dst) for lk in net if lk.slow and (lk.port or "").split(" (")[0]
+                                    == p.name} for p in slow_ports}
+        self.acked = {p.name: [lk.src * n_nodes + lk.dst for lk in net if not lk.slow and
+                               (lk.dst if p.direction == "out" else lk.src) == p.node] for p in slow_ports}
+        behind = {code for codes in self.acked.values() for code in codes}
         # The class's healthy links set the rate to reach: in a small class the slow links themselves
         # would pull a median over all of it down (in a 4-node ring one bad node is on half the links).
-        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls and not lk.slow]
+        median = {cls: _nanmedian([lk.bandwidth_Bps for lk in net if lk.link_class == cls and not lk.slow
+                                   and lk.src * n_nodes + lk.dst not in behind]
+                                  or [lk.bandwidth_Bps for lk in net if lk.link_class == cls and not lk.slow]
                                   or [lk.bandwidth_Bps for lk in net if lk.link_class == cls])
                   for cls in {lk.link_class for lk in net}}
         self.better = self.beta.copy()
@@ -223,7 +239,9 @@ class _Fixer:
     def step_s(self, fixed: list[LinkStats]) -> float:
         """The step time with the links ``fixed`` at their class's healthy median β."""
         beta = self.beta.copy()
+        pairs = {(lk.src, lk.dst) for lk in fixed}
         codes = [lk.src * self.n + lk.dst for lk in fixed]
+        codes += [code for port, held in self.port_links.items() if held and held <= pairs for code in self.acked[port]]
         beta[codes] = self.better[codes]
         m = self.model
         return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, beta))
@@ -428,7 +446,9 @@ HOW: dict[str, tuple[str, str]] = {
                "doubling, Rabenseifner) and halo exchange (max over ranks of Σ α + n/β)",
                "Thakur, Rabenseifner & Gropp (2005); Patarasuk & Yuan (2009)"),
     "whatif.slow_fixed": ("measured step − modelled communication with each node pair at its own α, β + the same "
-                          "with every slow link's β raised to the median of its class's links not judged slow; "
+                          "with every slow link's β raised to the median of its class's links not judged slow (nor "
+                          "held back by a slow port's acknowledgements); a slow port fixed also raises the links "
+                          "whose acknowledgements cross it (into its node for a way out, out of it for a way in); "
                           "halo messages at their pair's α + n/β, summed per rank over what it receives and, "
                           "apart, what it sends (a shared way out sends one after another), the layer waiting "
                           "for the busiest; collectives at the fleet α and the slowest pair's β",
