@@ -257,15 +257,13 @@ class _StakeBounds:
                 return replace(lk, bandwidth_Bps=lk.bandwidth_Bps * (1 - sign * 2 * e.bandwidth_rel),
                                latency_s=lk.latency_s + sign * 2 * e.latency_s)
             model = replace(full.model, alpha_s=full.model.alpha_s + sign * worst_alpha)
-            return _Fixer(model, tuple(moved(lk) for lk in full.links), len(full.nodes), full.remaining_steps)
+            return _Fixer(model, tuple(moved(lk) for lk in full.links), full.ports, len(full.nodes),
+                          full.remaining_steps)
 
         self.opt, self.pess = corner(-1.0), corner(1.0)
 
     def _comm(self, fixer: _Fixer, names: list[str]) -> float:
-        beta = fixer.beta.copy()
-        codes = [self.by_name[n].src * fixer.n + self.by_name[n].dst for n in names]
-        beta[codes] = fixer.better[codes]
-        return fixer.model.links_comm_s(fixer.alpha, beta)
+        return fixer.model.links_comm_s(fixer.alpha, fixer.beta_with([self.by_name[n] for n in names]))
 
     def step(self, names: list[str]) -> tuple[float, float]:
         """The predicted step time with ``names`` fixed: measured − comm now + comm then, each at its worst."""

@@ -236,15 +236,20 @@ class _Fixer:
         self.comm_now = model.links_comm_s(self.alpha, self.beta)
         self.now = self.step_s([])
 
-    def step_s(self, fixed: list[LinkStats]) -> float:
-        """The step time with the links ``fixed`` at their class's healthy median β."""
+    def beta_with(self, fixed: list[LinkStats]) -> np.ndarray:
+        """Every node pair's β with the links ``fixed`` at their class's healthy median β, and the links a
+        port held back through their acknowledgements once every slow link through that port is fixed."""
         beta = self.beta.copy()
         pairs = {(lk.src, lk.dst) for lk in fixed}
         codes = [lk.src * self.n + lk.dst for lk in fixed]
         codes += [code for port, held in self.port_links.items() if held and held <= pairs for code in self.acked[port]]
         beta[codes] = self.better[codes]
+        return beta
+
+    def step_s(self, fixed: list[LinkStats]) -> float:
+        """The step time with the links ``fixed`` at their class's healthy median β."""
         m = self.model
-        return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, beta))
+        return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, self.beta_with(fixed)))
 
     def hours(self, fixed: list[LinkStats]) -> float | None:
         """DESIGN §3: remaining steps × (predicted step time now − predicted with ``fixed`` at the median)."""

@@ -327,7 +327,7 @@ class SummaryWindow:
                          _halo_groups(steps, n_layers),
                          _halo_split([self._halo[s.step] for s in steps], n_layers, len(nodes)))
         # From here as ``analyse``: each slow link's stake, the run's, the standing findings, the what-if.
-        fixer = _Fixer(model, links, len(nodes), remaining)
+        fixer = _Fixer(model, links, ports, len(nodes), remaining)
         links = _with_stakes(fixer, links)
         net = [lk for lk in links if not lk.local]
         slow = [lk for lk in net if lk.slow]
