@@ -112,8 +112,8 @@ def format_snapshot(s: dict[str, Any], width: int = 100) -> str:
              and lk["bandwidth_Bps"] > lk["nominal_Bps"]]
     if above:
         most = max(lk["bandwidth_Bps"] / lk["nominal_Bps"] - 1 for lk in above)
-        out += _wrap(f"beta above nominal on {count(len(above))} of {count(len(s['links']))} links (up to "
-                     f"{percent(most)}): the fit's error, no card beats its rate", width)
+        out += ["", *_wrap(f"beta above nominal on {count(len(above))} of {count(len(s['links']))} links (up to "
+                     f"{percent(most)}): the fit's error, no card beats its rate", width)]
     slow_ports = [p for p in s.get("ports", []) if p["slow"]]
     if slow_ports:
         out += ["", *_wrap("slow ports (a node's way out or in; involve the site's network operators before "
