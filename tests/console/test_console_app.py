@@ -246,3 +246,21 @@ async def test_layers_without_figures_yet_are_drawn_not_fatal(clock: FakeClock) 
         await pilot.pause()
         text = screen_text(app)
     assert early["layers"][0]["name"] in text
+
+
+async def test_a_zero_layer_time_takes_the_unit_of_its_column(clock: FakeClock) -> None:
+    """A layer with no compute (a gradient bucket) among milliseconds reads "0.00 ms", in the table and in its
+    detail line, never "0.00 s" beside "162 ms"."""
+    snap = make_snapshot()
+    bucket = max(snap["layers"], key=lambda lay: lay["per_step"]["exchange_s"])
+    bucket["per_step"] = {**bucket["per_step"], "compute_s": 0.0, "compute_worst_s": 0.0}
+    bucket["compute_s"] = 0.0
+    app = ConsoleApp(StaticFeed([snap]), clock=clock)
+    async with app.run_test(size=(120, 30)) as pilot:
+        await settle(pilot)
+        names, computes = first_column(app, "#layers-table", 1), first_column(app, "#layers-table", 2)
+        zero = computes[names.index(bucket["name"])]
+        assert zero == "0.00 ms" and all(c.endswith(" ms") or c.endswith(" µs") for c in computes)
+        view = app.query_one("#layers")
+        assert view.detail is not None and bucket["name"] in view.detail.plain  # the cursor's row: the bucket
+        assert "compute 0.00 ms (worst rank 0.00 ms)" in view.detail.plain

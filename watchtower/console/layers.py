@@ -120,10 +120,10 @@ class LayersView(TableView):
             Text.assemble(
                 ("layer ", self.paint("quiet")),
                 fmt.literal(layer["name"]),
-                f" · per step: compute {fmt.seconds(per_step.get('compute_s'))}"
-                f" (worst rank {fmt.seconds(per_step.get('compute_worst_s'))}),"
-                f" exchange {fmt.seconds(per_step.get('exchange_s'))}"
-                f" (worst rank {fmt.seconds(per_step.get('exchange_worst_s'))})",
+                f" · per step: compute {fmt.seconds(per_step.get('compute_s'), self._scale)}"
+                f" (worst rank {fmt.seconds(per_step.get('compute_worst_s'), self._scale)}),"
+                f" exchange {fmt.seconds(per_step.get('exchange_s'), self._scale)}"
+                f" (worst rank {fmt.seconds(per_step.get('exchange_worst_s'), self._scale)})",
                 f" · comm {fmt.percent(layer['comm_fraction'])},",
                 f" worst rank {fmt.percent(layer['comm_fraction_worst'])}",
                 (" · COMM-BOUND" if layer["comm_bound"] else "", self.paint("bad")),
