@@ -143,14 +143,9 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
            "false_alerts_per_day": false_alerts_per_day}
     watch = None if series is None else watch_run(series, window.nodes, links=link_rates, **bar)
     checked = {(lk.src, lk.dst) for lk in links if lk.measured_by == "check"}
-    if watch is not None and checked and checks is not None:
-        rates = check_rate_series(checks)
-        keep = [j for j, pair in enumerate(rates.links) if pair in checked]
-        if keep:
-            rates = replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
-                            link_transfer_s=rates.link_transfer_s[:, keep],
-                            link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
-            watch = _with_checked(watch, watch_run(series, window.nodes, links=rates, **bar))
+    rates = None if watch is None or not checked or checks is None else _checked_rates(checks, checked)
+    if rates is not None:
+        watch = _with_checked(watch, watch_run(series, window.nodes, links=rates, **bar))
     net = [lk for lk in links if not lk.local]
     model = step_model(window, eff, _nanmedian([lk.latency_s for lk in net]),
                        _nanmedian([lk.bandwidth_Bps for lk in net]))
@@ -158,7 +153,7 @@ def analyse(window: Window, series: RunSeries | None, cluster: Cluster, *,
     links = _with_stakes(fixer, links)
     net = [lk for lk in links if not lk.local]
     fixed_step = fixer.step_s([lk for lk in net if lk.slow])
-    at_stake = fixer.hours([lk for lk in net if lk.slow])
+    at_stake = fixer.saved_hours(fixer.now, fixed_step)
     whatif = what_ifs(model, eff.workers, scenarios)
     if eff.workers:
         speedup_fixed = model.work_s / fixed_step if fixed_step > 0 else math.nan
@@ -234,7 +229,7 @@ class _Fixer:
                 self.beta[code] = lk.bandwidth_Bps
             self.better[code] = np.fmax(self.beta[code], median[lk.link_class])
         self.comm_now = model.links_comm_s(self.alpha, self.beta)
-        self.now = self.step_s([])
+        self.now = max(model.path_s, model.measured_s)  # nothing fixed: the model's communication as measured
 
     def beta_with(self, fixed: list[LinkStats]) -> np.ndarray:
         """Every node pair's β with the links ``fixed`` at their class's healthy median β, and the links a
@@ -248,14 +243,31 @@ class _Fixer:
 
     def step_s(self, fixed: list[LinkStats]) -> float:
         """The step time with the links ``fixed`` at their class's healthy median β."""
+        if not fixed:
+            return self.now
         m = self.model
-        return max(m.path_s, m.measured_s - self.comm_now + m.links_comm_s(self.alpha, self.beta_with(fixed)))
+        return max(m.path_s, m.measured_s + (m.links_comm_s(self.alpha, self.beta_with(fixed)) - self.comm_now))
 
-    def hours(self, fixed: list[LinkStats]) -> float | None:
-        """DESIGN §3: remaining steps × (predicted step time now − predicted with ``fixed`` at the median)."""
+    def saved_hours(self, before_s: float, after_s: float) -> float | None:
+        """DESIGN §3: remaining steps × (predicted step time before − after a fix); None without a total."""
         if self.remaining is None:
             return None
-        return self.remaining * max(0.0, self.now - self.step_s(fixed)) / 3600.0
+        return self.remaining * max(0.0, before_s - after_s) / 3600.0
+
+    def hours(self, fixed: list[LinkStats]) -> float | None:
+        """The hours at stake on ``fixed``: from the step time now to the one with them at the median."""
+        return self.saved_hours(self.now, self.step_s(fixed))
+
+
+def _checked_rates(checks: Checks, checked: set[tuple[int, int]]) -> RunSeries | None:
+    """The pair checks' rate series of the links only checks measure (as ``analyse`` watches them)."""
+    rates = check_rate_series(checks)
+    keep = [j for j, pair in enumerate(rates.links) if pair in checked]
+    if not keep:
+        return None
+    return replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
+                   link_transfer_s=rates.link_transfer_s[:, keep],
+                   link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
 
 
 def _with_stakes(fixer: _Fixer, links: tuple[LinkStats, ...]) -> tuple[LinkStats, ...]:
@@ -265,8 +277,9 @@ def _with_stakes(fixer: _Fixer, links: tuple[LinkStats, ...]) -> tuple[LinkStats
         if lk.local or not lk.slow:
             out.append(lk)
             continue
-        saving = max(0.0, fixer.now - fixer.step_s([lk]))
-        out.append(replace(lk, saving_per_step_s=saving, hours_at_stake=fixer.hours([lk])))
+        alone = fixer.step_s([lk])
+        out.append(replace(lk, saving_per_step_s=max(0.0, fixer.now - alone),
+                           hours_at_stake=fixer.saved_hours(fixer.now, alone)))
     return tuple(out)
 
 
@@ -277,14 +290,14 @@ def _standing(ports: tuple[PortStats, ...], net: list[LinkStats], alerts: tuple[
     all the links it holds back buys at once."""
     changed = {al.subject for al in alerts} | {(al.port or "").split(" (")[0] for al in alerts if al.port}
     every_slow = [lk for lk in net if lk.slow]
+    all_fixed = fixer.step_s(every_slow) if fixer.remaining is not None else None
 
     def once_others_fixed(held: list[LinkStats]) -> float | None:
         """Two faults on one critical path hide each other: fixing either alone buys nothing while the other
         holds the step, so each is also priced as the last one standing."""
-        if fixer.remaining is None:
+        if all_fixed is None:
             return None
-        others = [lk for lk in every_slow if lk not in held]
-        return fixer.remaining * max(0.0, fixer.step_s(others) - fixer.step_s(every_slow)) / 3600.0
+        return fixer.saved_hours(fixer.step_s([lk for lk in every_slow if lk not in held]), all_fixed)
 
     by_pair = {(lk.src_name, lk.dst_name): lk for lk in net}
     found = []

@@ -10,12 +10,12 @@ from __future__ import annotations
 
 from collections import deque
 from collections.abc import Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 
 from watchtower.analysis.aggregate import COMM_BOUND_THRESHOLD, LayerStats, WindowSums, layer_stats
-from watchtower.analysis.checks import Checks, check_rate_series, fit_checks
+from watchtower.analysis.checks import Checks, fit_checks
 from watchtower.analysis.cusum import FALSE_ALERTS_PER_DAY, MIN_EFFECT, MIN_HOURS, WARMUP, Alert, Watch, watch_run
 from watchtower.analysis.drilldown import WorstRanks, worst_of_sums
 from watchtower.analysis.efficiency import Efficiency, Speedup, Straggler, find_stragglers, pop_efficiency
@@ -54,6 +54,7 @@ from watchtower.analysis.summary import (
     Analysis,
     Standing,
     WhatIf,
+    _checked_rates,
     _Fixer,
     _standing,
     _with_checked,
@@ -332,8 +333,8 @@ class SummaryWindow:
         net = [lk for lk in links if not lk.local]
         slow = [lk for lk in net if lk.slow]
         whatif = what_ifs(model, eff.workers, SCENARIOS)
-        fixed_step = fixer.step_s(slow) if slow else fixer.now  # (``fixer.hours`` would predict it again)
-        hours = None if remaining is None else remaining * max(0.0, fixer.now - fixed_step) / 3600.0
+        fixed_step = fixer.step_s(slow)
+        hours = fixer.saved_hours(fixer.now, fixed_step)
         if eff.workers:
             whatif += (WhatIf("slow links fixed", 1.0, 1.0, eff.workers, fixed_step,
                               model.work_s / fixed_step if fixed_step > 0 else np.nan, True),)
@@ -375,17 +376,6 @@ def as_analysis(figures: Figures, cluster: Cluster, series: RunSeries | None = N
                     remaining_steps=remaining, eta_s=eta_s(remaining, recent_step_s),
                     hours_at_stake=figures.hours_at_stake,
                     model=figures.model, whatif=figures.whatif, serial_fraction=None)
-
-
-def _checked_rates(checks: Checks, checked: set[tuple[int, int]]) -> RunSeries | None:
-    """The pair checks' rate series of the links only checks measure (as ``analyse`` watches them)."""
-    rates = check_rate_series(checks)
-    keep = [j for j, pair in enumerate(rates.links) if pair in checked]
-    if not keep:
-        return None
-    return replace(rates, links=tuple(rates.links[j] for j in keep), link_bytes=rates.link_bytes[:, keep],
-                   link_transfer_s=rates.link_transfer_s[:, keep],
-                   link_watch_Bps=None if rates.link_watch_Bps is None else rates.link_watch_Bps[:, keep])
 
 
 def _rate_series(steps: Sequence[StepSummary], fit_steps: Sequence[StepSummary], n_nodes: int) -> RunSeries:
