@@ -24,6 +24,7 @@ import threading
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
+from typing import TypeVar
 
 import zmq
 from zmq.auth.thread import ThreadAuthenticator
@@ -49,6 +50,7 @@ _PROTOCOL_REASONS = {
     zmq.PROTOCOL_ERROR_ZMTP_CRYPTOGRAPHIC: "wrong-server-key",  # it cannot decrypt: it trusts another head
 }
 
+_Kind = TypeVar("_Kind", wire.ClockPing, wire.CheckHello)  # the messages the collector answers
 
 class EndpointError(ValueError):
     """An endpoint string we cannot use; the message is one line for the user."""
@@ -224,12 +226,18 @@ class Collector:
         elif kind == wire.Kind.CHECK_HELLO:
             self._answer_hello(envelope, frames, received_ns)
 
-    def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:
+    @staticmethod
+    def _decoded(frames: list[bytes], kind: type[_Kind]) -> _Kind | None:
+        """The message if it decodes as ``kind``; a bad one is counted when the batch is ingested."""
         try:
-            ping = wire.decode(frames)
+            message = wire.decode(frames)
         except wire.WireError:
-            return  # counted when the batch is ingested
-        if not isinstance(ping, wire.ClockPing):
+            return None
+        return message if isinstance(message, kind) else None
+
+    def _answer_ping(self, envelope: list[bytes], frames: list[bytes], t1: int) -> None:
+        ping = self._decoded(frames, wire.ClockPing)
+        if ping is None:
             return
         pong = wire.encode_pong(self.sender, self._seq, ping.t0, t1, time.time_ns())
         self._seq += 1
@@ -238,11 +246,8 @@ class Collector:
 
     def _answer_hello(self, envelope: list[bytes], frames: list[bytes], now_ns: int) -> None:
         """A daemon running pair checks: tell it where the others' listeners are (never blocking)."""
-        try:
-            hello = wire.decode(frames)
-        except wire.WireError:
-            return  # counted when the batch is ingested
-        if not isinstance(hello, wire.CheckHello):
+        hello = self._decoded(frames, wire.CheckHello)
+        if hello is None:
             return
         reply = self.check_directory.answer(hello, now_ns, self._seq)
         self._seq += 1

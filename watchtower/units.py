@@ -39,11 +39,13 @@ def visible(raw: str) -> str:
     return "".join(out)
 
 
+def _unit(value: float, units: Sequence[tuple[float, str]]) -> tuple[float, str]:
+    """The largest unit ``value`` reaches (the smallest for tinier values), with its factor."""
+    return next(((f, u) for f, u in units if abs(value) >= f), units[-1])
+
+
 def _scaled(value: float, units: Sequence[tuple[float, str]]) -> str:
-    for factor, unit in units:
-        if abs(value) >= factor:
-            return _three_digits(value / factor, unit)
-    factor, unit = units[-1]
+    factor, unit = _unit(value, units)
     return _three_digits(value / factor, unit)
 
 
@@ -72,8 +74,7 @@ def seconds(value: float | None, like: float | None = None) -> str:
     if value is None:
         return MISSING
     if value == 0:
-        unit = next((u for f, u in _TIME_UNITS if abs(like or 0.0) >= f), "s") if like else "s"
-        return f"0.00 {unit}"
+        return f"0.00 {_unit(like, _TIME_UNITS)[1] if like else 's'}"
     return _scaled(value, _TIME_UNITS)
 
 
